@@ -1,0 +1,112 @@
+"""Pictures and tables: sample pictures per stage, quality versus steps, the terminal stage table."""
+from __future__ import annotations
+
+import math
+from pathlib import Path
+
+import matplotlib
+
+matplotlib.use("Agg")
+import matplotlib.pyplot as plt  # noqa: E402
+import torch  # noqa: E402
+
+from . import checkpoint  # noqa: E402
+
+SCATTER_POINTS = 2000  # points drawn in 2D scatter plots (more only blurs the picture)
+
+
+def _save(fig, path: Path) -> None:
+    tmp = path.with_name(f".{path.name}.tmp.png")
+    fig.savefig(tmp, dpi=110, bbox_inches="tight")
+    plt.close(fig)
+    tmp.replace(path)
+
+
+def image_grid(x: torch.Tensor, rows: int = 8, cols: int = 8) -> torch.Tensor:
+    """(N, C, H, W) in [-1, 1] -> one (rows*H, cols*W) picture in [0, 1] (first channel or RGB)."""
+    x = x[: rows * cols].clamp(-1, 1).add(1).div(2)
+    n, c, h, w = x.shape
+    pad = torch.ones(rows * cols - n, c, h, w)
+    x = torch.cat([x, pad]).reshape(rows, cols, c, h, w).permute(0, 3, 1, 4, 2).reshape(rows * h, cols * w, c)
+    return x[..., 0] if c == 1 else x
+
+
+def sample_picture(x: torch.Tensor, bench, path: Path, title: str) -> None:
+    """Scatter (2D: samples over the data) or image grid of a stage's samples."""
+    fig, ax = plt.subplots(figsize=(4.2, 4.2))
+    if x.dim() == 4:
+        ax.imshow(image_grid(x).numpy(), cmap="gray", vmin=0, vmax=1)
+        ax.axis("off")
+    else:
+        ref = bench.reference[:SCATTER_POINTS]
+        ax.scatter(ref[:, 0], ref[:, 1], s=2, c="0.75", label="data")
+        ax.scatter(x[:SCATTER_POINTS, 0], x[:SCATTER_POINTS, 1], s=2, c="tab:blue", label="samples")
+        ax.set_aspect("equal")
+        ax.set_xlim(-3, 3), ax.set_ylim(-3, 3)
+        ax.legend(loc="upper right", markerscale=4, fontsize=8)
+    ax.set_title(title, fontsize=9)
+    _save(fig, path)
+
+
+def quality_vs_steps(summaries: list[tuple[str, dict]], metric: str, path: Path) -> None:
+    """Students and the teacher's DDIM baseline versus steps (log2 axis), with error bars, teacher and floor."""
+    fig, ax = plt.subplots(figsize=(6, 4))
+    for label, s in summaries:
+        rows = [r for r in s["stages"] if r["metrics"]]
+        steps = [r["steps"] for r in rows]
+        ax.errorbar(steps, [r["metrics"].get(f"quality/{metric}", math.nan) for r in rows],
+                    yerr=[r["metrics"].get(f"quality/{metric}_se", 0) for r in rows], marker="o", capsize=3,
+                    label=f"{label} student")
+        if rows and f"baseline/{metric}" in rows[0]["metrics"]:
+            ax.errorbar(steps, [r["metrics"][f"baseline/{metric}"] for r in rows],
+                        yerr=[r["metrics"].get(f"baseline/{metric}_se", 0) for r in rows], marker="s",
+                        linestyle="--", capsize=3, label=f"{label} teacher DDIM (baseline)")
+    ref = summaries[0][1]["reference"]
+    ax.axhline(ref["teacher"][metric], color="k", lw=1, label=f"teacher at {ref.get('steps', '?')} steps")
+    ax.axhline(ref["floor"][metric], color="0.6", lw=1, linestyle=":", label="floor (data vs data)")
+    ax.set_xscale("log", base=2)
+    if metric in ("sw2", "fd"):
+        ax.set_yscale("log")
+    ax.set_xlabel("sampler steps (NFE)")
+    ax.set_ylabel(metric)
+    ax.legend(fontsize=7)
+    ax.grid(alpha=0.3)
+    _save(fig, path)
+
+
+def write_plots(summary: dict, run_dir: Path) -> list[Path]:
+    path = run_dir / "quality_vs_steps.png"
+    quality_vs_steps([(summary["method"], summary)], summary["stop_metric"], path)
+    return [path]
+
+
+def stage_table(summary: dict) -> str:
+    """The terminal table printed at the end of a run."""
+    metric = summary["stop_metric"]
+    ref = summary["reference"]
+    head = f"{'stage':>5} {'steps':>5}  {metric + ' ± se':>18}  {'DDIM baseline':>13}  {'diverg. rms':>11}  " \
+           f"{'verdict':>7}  {'seconds':>7}"
+    lines = [head, "-" * len(head),
+             f"{'teach':>5} {ref.get('steps', 0):>5}  {_pm(ref['teacher'], metric):>18}  {'':>13}  {'':>11}  "
+             f"{'':>7}  {'':>7}"]
+    for r in summary["stages"]:
+        m = r["metrics"]
+        secs = r["seconds"]["train"] + r["seconds"]["eval"]
+        lines.append(f"{r['index']:>5} {r['steps']:>5}  {_pm(m, metric, 'quality/'):>18}  "
+                     f"{m.get(f'baseline/{metric}', math.nan):>13.4g}  {m.get('divergence/teacher_rms', math.nan):>11.4g}  "
+                     f"{r['verdict']:>7}  {secs:>7.1f}")
+    chosen = summary["chosen"]
+    lines.append(f"floor ({metric}, data vs data): {ref['floor'][metric]:.4g}")
+    lines.append(f"stopped: {summary['stopped_because']}")
+    lines.append("chosen student: " + (f"stage {chosen['index']} at {chosen['steps']} steps ({chosen['folder']})"
+                                       if chosen else "none within tolerance"))
+    return "\n".join(lines)
+
+
+def _pm(m: dict, metric: str, prefix: str = "") -> str:
+    v, se = m.get(f"{prefix}{metric}", math.nan), m.get(f"{prefix}{metric}_se", math.nan)
+    return f"{v:.4g} ± {se:.2g}"
+
+
+def load_summary(run_dir: Path) -> dict:
+    return checkpoint.read_json(Path(run_dir) / "summary.json", {"stages": list, "reference": dict})

@@ -1,0 +1,112 @@
+"""What each method contributes to the pipeline: its stage plan, how a stage's student is built and trained,
+and how a student samples. The math lives in methods/; this file only wires it to the shared loop.
+
+Registry (STYLE.md 8): METHODS maps a method name to its three functions; unknown names fail loudly.
+"""
+from __future__ import annotations
+
+import copy
+from dataclasses import dataclass
+from typing import Callable
+
+import torch
+
+from .denoiser import NetDenoiser
+from .methods import consistency, progressive
+from .samplers import sample, uniform_grid
+from .training import LoopSpec, train_loop
+
+
+@dataclass
+class StageSpec:
+    index: int  # 1-based
+    steps: int  # the student's sampler steps (NFE) after this stage
+    teacher_steps: int  # steps of the stage's own teacher
+    iterations: int
+
+
+def _progressive_plan(cfg) -> list[StageSpec]:
+    steps = progressive.stage_plan(cfg.teacher.steps, cfg.method.target_steps)
+    return [StageSpec(i + 1, n, 2 * n, cfg.method.iterations) for i, n in enumerate(steps)]
+
+
+def _consistency_plan(cfg) -> list[StageSpec]:
+    return [StageSpec(i + 1, n, cfg.teacher.steps, cfg.method.iterations) for i, n in enumerate(cfg.method.steps)]
+
+
+def _progressive_student(cfg, previous: torch.nn.Module, data) -> torch.nn.Module:
+    """A fresh trainable copy of the previous stage's denoiser (the teacher's network at stage 1)."""
+    student = copy.deepcopy(previous)
+    student.requires_grad_(True)
+    return student
+
+
+def _consistency_student(cfg, previous: torch.nn.Module, data) -> torch.nn.Module:
+    """Stage 1 wraps a copy of the teacher's denoiser; later stages continue the previous student."""
+    if isinstance(previous, consistency.ConsistencyModel):
+        student = copy.deepcopy(previous)
+    else:
+        sigma_data = cfg.method.sigma_data or data.sigma_data
+        student = consistency.ConsistencyModel(copy.deepcopy(previous), sigma_data, cfg.method.sigma_min)
+    student.requires_grad_(True)
+    return student
+
+
+def _progressive_train(cfg, spec: StageSpec, teacher, student, data, generator, state_path, quiet, device):
+    m = cfg.method
+    loss_fn = progressive.progressive_loss(teacher, spec.steps, m.loss)
+    loop = LoopSpec(iterations=spec.iterations, lr=m.lr, decay="linear", grad_clip=m.grad_clip, ema_decay=m.ema_decay)
+    return train_loop(student, loss_fn, data.batches(m.batch_size, device), loop, generator=generator,
+                      state_path=state_path, desc=f"stage {spec.index} ({spec.steps} steps)", quiet=quiet)
+
+
+def _consistency_train(cfg, spec: StageSpec, teacher, student, data, generator, state_path, quiet, device):
+    m = cfg.method
+    loss_fn = consistency.consistency_loss(teacher, m, student.sigma_data, data.x[0].numel())
+    loop = LoopSpec(iterations=spec.iterations, lr=m.lr, decay="none", grad_clip=m.grad_clip, ema_decay=m.ema_decay)
+    return train_loop(student, loss_fn, data.batches(m.batch_size, device), loop, generator=generator,
+                      state_path=state_path, desc=f"stage {spec.index} ({spec.steps} steps)", quiet=quiet)
+
+
+def _progressive_sampler(cfg, student: NetDenoiser, steps: int) -> Callable:
+    return lambda noise, cond: sample(student, noise.to(_device(student)), uniform_grid(steps), "ddim", cond=cond)
+
+
+def _consistency_sampler(cfg, student, steps: int) -> Callable:
+    sigmas = consistency.sample_sigmas(steps, cfg.method)
+
+    def draw(noise, cond):
+        g = torch.Generator().manual_seed(cfg.eval.seed + steps)  # the same intermediate noise every stage
+        with torch.no_grad():
+            return consistency.consistency_sample(student, noise.to(_device(student)), sigmas, g, cond=cond)
+    return draw
+
+
+def _device(module) -> torch.device:
+    return next(module.parameters()).device
+
+
+@dataclass(frozen=True)
+class Method:
+    plan: Callable
+    make_student: Callable
+    train: Callable
+    sampler: Callable
+
+
+METHODS = {
+    "progressive": Method(_progressive_plan, _progressive_student, _progressive_train, _progressive_sampler),
+    "consistency": Method(_consistency_plan, _consistency_student, _consistency_train, _consistency_sampler),
+}
+
+
+def method_for(name: str) -> Method:
+    if name not in METHODS:
+        raise ValueError(f"method.name={name!r} is unknown; valid: {', '.join(METHODS)}")
+    return METHODS[name]
+
+
+def teacher_sampler(teacher, steps: int, sampler: str = "ddim") -> Callable:
+    """The teacher on a uniform grid of `steps` (its full steps, or a baseline at a student's steps)."""
+    return lambda noise, cond: sample(teacher, noise, uniform_grid(steps), sampler, cond=cond,
+                                      generator=torch.Generator().manual_seed(steps))

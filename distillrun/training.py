@@ -1,0 +1,155 @@
+"""The one optimisation loop shared by teacher training and every distillation method.
+
+A method supplies only its math, `loss_fn(model, target, batch, generator) -> scalar`; this loop owns
+Adam, LR warm-up/decay, gradient clipping, the EMA copy, NaN/explosion detection, mid-run state
+for resume, and the progress bar, so those are written (and tested) once.
+"""
+from __future__ import annotations
+
+import math
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Callable
+
+import torch
+from torch import nn
+from torch.optim.lr_scheduler import ConstantLR, CosineAnnealingLR, LinearLR, SequentialLR
+from torch.optim.swa_utils import AveragedModel
+from tqdm.auto import tqdm
+
+from . import checkpoint
+
+# A clipped step is still taken when the gradient norm is large; only a norm this far beyond any
+# sane value ends the run as diverged (common practice: clip at ~1, treat 1e4x that as divergence).
+EXPLODED_GRAD_NORM = 1e4
+
+
+@dataclass
+class LoopSpec:
+    iterations: int
+    lr: float
+    warmup: int = 0
+    decay: str = "linear"  # linear | cosine | none: LR after warm-up, ending at 0 (none: constant)
+    grad_clip: float = 1.0
+    ema_decay: float = 0.0  # 0: no EMA copy, the target network is the model itself
+    save_every: int = 500  # iterations between mid-run states (resume points)
+
+
+@dataclass
+class LoopResult:
+    model: nn.Module  # the network to keep: the EMA copy when ema_decay > 0
+    losses: list[float] = field(default_factory=list)
+    seconds: float = 0.0
+    failed: str | None = None  # why the run stopped early (NaN, explosion), or None
+    iterations_here: int = 0  # iterations run by this process (fewer than len(losses) after a resume)
+
+    @property
+    def its_per_s(self) -> float:
+        return self.iterations_here / self.seconds if self.seconds > 0 else float("nan")
+
+
+def make_scheduler(opt: torch.optim.Optimizer, spec: LoopSpec):
+    """Linear warm-up from ~0, then linear or cosine decay to 0 over the remaining iterations."""
+    rest = max(spec.iterations - spec.warmup, 1)
+    decay = {"linear": lambda: LinearLR(opt, 1.0, 0.0, total_iters=rest),
+             "cosine": lambda: CosineAnnealingLR(opt, T_max=rest),
+             "none": lambda: ConstantLR(opt, 1.0, total_iters=0)}[spec.decay]()
+    if spec.warmup <= 0:
+        return decay
+    warm = LinearLR(opt, 1e-3, 1.0, total_iters=spec.warmup)
+    return SequentialLR(opt, [warm, decay], milestones=[spec.warmup])
+
+
+def ema_avg_fn(decay: float):
+    """EMA update with warm-up: rate min(decay, (1 + n) / (10 + n)) after n updates, so a short run's EMA
+    is not dominated by its first, untrained weights (common practice; e.g. TensorFlow's
+    ExponentialMovingAverage num_updates option, from memory)."""
+    def avg(averaged: torch.Tensor, current: torch.Tensor, num_averaged: torch.Tensor) -> torch.Tensor:
+        n = float(num_averaged)
+        rate = min(decay, (1 + n) / (10 + n))
+        return rate * averaged + (1 - rate) * current
+    return avg
+
+
+def make_ema(model: nn.Module, decay: float) -> nn.Module:
+    if decay <= 0:
+        return model
+    ema = AveragedModel(model, avg_fn=ema_avg_fn(decay), use_buffers=True)
+    ema.requires_grad_(False)
+    return ema
+
+
+def kept_model(ema: nn.Module) -> nn.Module:
+    return ema.module if isinstance(ema, AveragedModel) else ema
+
+
+def _state_tensors(model, ema, opt, sched, generator, losses, it):
+    opt_tensors, opt_meta = checkpoint.flatten_optimizer_state(opt.state_dict())
+    tensors = {f"model.{k}": v for k, v in model.state_dict().items()}
+    if ema is not model:
+        tensors.update({f"ema.{k}": v for k, v in ema.state_dict().items()})
+    tensors.update({f"opt.{k}": v for k, v in opt_tensors.items()})
+    tensors["rng"] = generator.get_state()
+    tensors["losses"] = torch.tensor(losses, dtype=torch.float64)
+    meta = {"iteration": it, "optimizer": opt_meta, "scheduler": sched.state_dict()}
+    return tensors, meta
+
+
+def _restore(path, model, ema, opt, sched, generator):
+    tensors, meta = checkpoint.load_state(path)
+    pick = lambda prefix: {k[len(prefix):]: v for k, v in tensors.items() if k.startswith(prefix)}  # noqa: E731
+    model.load_state_dict(pick("model."))
+    if ema is not model:
+        ema.load_state_dict(pick("ema."))
+    opt.load_state_dict(checkpoint.unflatten_optimizer_state(pick("opt."), meta["optimizer"]))
+    sched.load_state_dict(meta["scheduler"])
+    generator.set_state(tensors["rng"])
+    return meta["iteration"], tensors["losses"].tolist()
+
+
+def _check(loss: torch.Tensor, grad_norm: torch.Tensor, it: int) -> str | None:
+    if not torch.isfinite(loss):
+        return f"loss became {float(loss)} at iteration {it}"
+    if not torch.isfinite(grad_norm) or grad_norm > EXPLODED_GRAD_NORM:
+        return f"gradient norm {float(grad_norm):.3g} at iteration {it} (diverged)"
+    return None
+
+
+def train_loop(model: nn.Module, loss_fn: Callable, draw_batch: Callable, spec: LoopSpec, *,
+               generator: torch.Generator, state_path: Path | None = None, desc: str = "train",
+               quiet: bool = False) -> LoopResult:
+    """Run spec.iterations of Adam on loss_fn(model, target, draw_batch(generator), generator).
+    With state_path, a mid-run state is saved every spec.save_every iterations and resumed if present."""
+    opt = torch.optim.Adam([p for p in model.parameters() if p.requires_grad], lr=spec.lr)
+    sched = make_scheduler(opt, spec)
+    ema = make_ema(model, spec.ema_decay)
+    start, losses = 0, []
+    if state_path is not None and Path(state_path).exists():
+        start, losses = _restore(state_path, model, ema, opt, sched, generator)
+    result = LoopResult(model=kept_model(ema), losses=losses)
+    t0 = time.perf_counter()
+    bar = tqdm(range(start, spec.iterations), desc=desc, initial=start, total=spec.iterations,
+               disable=quiet, leave=False, dynamic_ncols=True)
+    for it in bar:
+        loss = loss_fn(model, kept_model(ema), draw_batch(generator), generator)
+        opt.zero_grad(set_to_none=True)
+        loss.backward()
+        grad_norm = torch.nn.utils.clip_grad_norm_(model.parameters(), spec.grad_clip if spec.grad_clip > 0 else math.inf)
+        result.failed = _check(loss.detach(), grad_norm, it)
+        if result.failed:
+            break
+        opt.step()
+        sched.step()
+        if ema is not model:
+            ema.update_parameters(model)
+        losses.append(loss.item())
+        if it % 50 == 0:
+            bar.set_postfix(loss=f"{losses[-1]:.4g}")
+        if state_path is not None and (it + 1) % spec.save_every == 0 and it + 1 < spec.iterations:
+            checkpoint.save_state(state_path, *_state_tensors(model, ema, opt, sched, generator, losses, it + 1))
+    bar.close()
+    result.seconds = time.perf_counter() - t0
+    result.losses = losses
+    result.iterations_here = len(losses) - start
+    return result
