@@ -109,4 +109,6 @@ def karras_sigmas(n: int, sigma_min: float, sigma_max: float, rho: float = 7.0) 
         raise ValueError(f"the Karras grid needs n >= 2 points, got {n}")
     ramp = torch.linspace(0, 1, n, dtype=torch.float64)
     inv_rho_max, inv_rho_min = sigma_max ** (1 / rho), sigma_min ** (1 / rho)
-    return (inv_rho_max + ramp * (inv_rho_min - inv_rho_max)) ** rho
+    sigmas = (inv_rho_max + ramp * (inv_rho_min - inv_rho_max)) ** rho
+    sigmas[0], sigmas[-1] = sigma_max, sigma_min  # exact endpoints (the rho-th power can be off by an ulp)
+    return sigmas

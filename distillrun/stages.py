@@ -63,7 +63,7 @@ def _progressive_train(cfg, spec: StageSpec, teacher, student, data, generator, 
 def _consistency_train(cfg, spec: StageSpec, teacher, student, data, generator, state_path, quiet, device):
     m = cfg.method
     loss_fn = consistency.consistency_loss(teacher, m, student.sigma_data, data.x[0].numel())
-    loop = LoopSpec(iterations=spec.iterations, lr=m.lr, decay="none", grad_clip=m.grad_clip, ema_decay=m.ema_decay)
+    loop = LoopSpec(iterations=spec.iterations, lr=m.lr, decay="linear", grad_clip=m.grad_clip, ema_decay=m.ema_decay)
     return train_loop(student, loss_fn, data.batches(m.batch_size, device), loop, generator=generator,
                       state_path=state_path, desc=f"stage {spec.index} ({spec.steps} steps)", quiet=quiet)
 
@@ -73,7 +73,7 @@ def _progressive_sampler(cfg, student: NetDenoiser, steps: int) -> Callable:
 
 
 def _consistency_sampler(cfg, student, steps: int) -> Callable:
-    sigmas = consistency.sample_sigmas(steps, cfg.method)
+    sigmas = consistency.sample_sigmas(steps, cfg.method, student.sigma_data)
 
     def draw(noise, cond):
         g = torch.Generator().manual_seed(cfg.eval.seed + steps)  # the same intermediate noise every stage

@@ -28,6 +28,7 @@ class Teacher:
     device: torch.device
     losses: list
     seconds: float
+    sigma_data: float = 1.0  # the data's standard deviation (consistency preconditioning)
 
     @property
     def num_classes(self) -> int:
@@ -39,6 +40,7 @@ class Teacher:
                 "stage": spec.index, "steps": spec.steps}
         if cfg.method.name == "consistency":
             meta["consistency"] = OmegaConf.to_container(cfg.method, resolve=True)
+            meta["consistency"]["sigma_data"] = cfg.method.sigma_data or self.sigma_data
         return meta
 
 
@@ -59,7 +61,7 @@ def prepare_teacher(cfg, data, run_dir) -> Teacher:
                 "factory_kwargs": OmegaConf.to_container(cfg.teacher.factory_kwargs, resolve=True),
                 "data_shape": list(data.shape), "num_classes": data.num_classes if cfg.net.class_cond else 0}
         den = NetDenoiser(net, cfg.teacher.parameterization, schedule).to(device).requires_grad_(False)
-        return Teacher(den, den, arch, device, [], 0.0)
+        return Teacher(den, den, arch, device, [], 0.0, data.sigma_data)
     net, arch = network_for(cfg, data)
     den = NetDenoiser(net, cfg.teacher.parameterization, schedule).to(device)
     oracle = OracleDenoiser(data.mixture, schedule) if cfg.teacher.source == "oracle" else None
@@ -89,7 +91,7 @@ def prepare_teacher(cfg, data, run_dir) -> Teacher:
         checkpoint.save_model(folder, den.state_dict(), meta)
         (folder / "partial.safetensors").unlink(missing_ok=True)
     den.requires_grad_(False)
-    return Teacher(oracle if oracle is not None else den, den, arch, device, losses, seconds)
+    return Teacher(oracle if oracle is not None else den, den, arch, device, losses, seconds, data.sigma_data)
 
 
 class TeacherTrainingFailed(RuntimeError):

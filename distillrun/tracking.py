@@ -322,4 +322,4 @@ class Tracker:
 
 def open_tracker(cfg) -> Tracker | NullTracker:
     """Tracker from a tracking config (fields enabled, uri, experiment)."""
-    return Tracker.open(cfg.uri, cfg.experiment, enabled=bool(cfg.enabled))
+    return Tracker.open(cfg.uri, cfg.experiment, enabled=bool(cfg.enabled), artifact_location=cfg.get("artifacts"))

@@ -130,7 +130,7 @@ def train_loop(model: nn.Module, loss_fn: Callable, draw_batch: Callable, spec: 
     result = LoopResult(model=kept_model(ema), losses=losses)
     t0 = time.perf_counter()
     bar = tqdm(range(start, spec.iterations), desc=desc, initial=start, total=spec.iterations,
-               disable=quiet, leave=False, dynamic_ncols=True)
+               disable=True if quiet else None, leave=False, dynamic_ncols=True)  # None: off when not a TTY
     for it in bar:
         loss = loss_fn(model, kept_model(ema), draw_batch(generator), generator)
         opt.zero_grad(set_to_none=True)
