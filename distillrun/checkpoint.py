@@ -20,6 +20,7 @@ import hashlib
 import json
 import os
 import secrets
+import signal
 from pathlib import Path
 from typing import Any, Mapping
 
@@ -43,6 +44,21 @@ MODEL_FIELDS: dict[str, Any] = {
 }
 _STATE_KEYS = ("distillrun.format", "distillrun.meta", "distillrun.digest")
 
+# Test hook, not a user setting: DISTILLRUN_KILL_AT=<point> makes the process SIGKILL itself when it reaches
+# that point, so tests can crash a run at a precise place and check its resume. Points: "<folder>:iteration=N"
+# (after iteration N of the teacher/ or stage-NN/ training loop and its state save), "stage-NN:evaluate",
+# "stage-NN:weights" (weights saved, metrics.json not yet), "reference:evaluate", "tracking:pipeline" and
+# "tracking:stage-NN" (MLflow run created, its id not yet in tracking.json), "write:<folder>/<file>" (half of
+# the file's bytes are in its temp file; <folder> is the parent's name, e.g. stage-02, teacher, or the run
+# folder's own name for summary.json). Read once at import: unset, each call site costs one falsy test.
+KILL_AT = os.environ.get("DISTILLRUN_KILL_AT") or None
+
+
+def kill_point(where: str) -> None:
+    """SIGKILL this process if DISTILLRUN_KILL_AT names `where` (POSIX: SIGKILL cannot be caught or ignored)."""
+    if KILL_AT is not None and KILL_AT == where:
+        os.kill(os.getpid(), signal.SIGKILL)
+
 
 class CheckpointError(ValueError):
     """A checkpoint file that cannot be used; str() is the one line shown to the user."""
@@ -63,6 +79,10 @@ def atomic_write_bytes(path, data: bytes) -> None:
     fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o666)  # mode honours the umask
     try:
         with os.fdopen(fd, "wb") as f:
+            if KILL_AT is not None and KILL_AT == f"write:{path.parent.name}/{path.name}":
+                f.write(data[:len(data) // 2])
+                f.flush()
+                kill_point(KILL_AT)
             f.write(data)
             f.flush()
             os.fsync(f.fileno())

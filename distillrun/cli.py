@@ -4,7 +4,8 @@
   distillrun recipes                 list recipes with purpose and expected CPU time
   distillrun draw RUN_DIR ...        sample from a finished run's chosen student (or any stage)
   distillrun compare RUN_DIR ...     stage table and plots for one run or several
-Exit codes: 0 done, 2 bad config or input (one line, nothing written), 3 a stage failed.
+Exit codes: 0 done, 2 bad config or input (one line, nothing written), 3 a stage or the teacher's training
+failed (one line saying what to change; earlier stages stay in the run folder).
 """
 from __future__ import annotations
 
@@ -52,10 +53,19 @@ def precheck(argv: list[str]) -> None:
     if any(f not in ("-m", "--multirun") for f in flags):
         return  # --help, --cfg, --info ...: Hydra's own business
     overrides = [a for a in argv if not a.startswith("-") and not a.lstrip("+~").startswith("hydra")]
+    parser = OverridesParser.create()
     try:
-        parsed = OverridesParser.create().parse_overrides(overrides)
+        parsed = parser.parse_overrides(overrides)
     except Exception as e:
+        for o in overrides:  # name the override that does not parse
+            try:
+                parser.parse_overrides([o])
+            except Exception:
+                fail(f"{o}: {compose_error_line(e)}")
         fail(compose_error_line(e))
+    sweeps = [o.input_line for o in parsed if o.is_sweep_override()]
+    if sweeps and not flags:
+        fail(f"{sweeps[0]}: a sweep needs --multirun (-m); for a list write key=[a,b], for text quote it: key='a,b'")
     base = [o.input_line if not o.is_sweep_override() else f"{o.get_key_element()}={next(o.sweep_string_iterator())}"
             for o in parsed]
     variants = [base]
@@ -65,11 +75,34 @@ def precheck(argv: list[str]) -> None:
     with initialize_config_module("distillrun.configs", version_base="1.3"):
         for ov in variants:
             try:
-                validate(compose("run", overrides=ov))
+                cfg = compose("run", overrides=ov)
+                validate(cfg)
             except ConfigError as e:
                 fail(str(e))
             except Exception as e:
                 fail(compose_error_line(e))
+            for o in parsed:
+                if (o.is_add() or o.is_force_add()) and unknown_addition(cfg, o.key_or_group):
+                    fail(f"{o.input_line}: '{o.key_or_group}' is not a distillrun key (a + adds a key that nothing "
+                         "reads); drop the + to set an existing key, see distillrun --cfg job")
+
+
+def unknown_addition(cfg, key: str) -> bool:
+    """True when `+key=...` added a key under a typed config node (one distillrun never reads); keys added to a
+    free-form mapping such as teacher.factory_kwargs are the user's own, and config groups are Hydra's."""
+    import dataclasses
+    from importlib.resources import files
+
+    from omegaconf import OmegaConf
+
+    if "." not in key and files("distillrun.configs").joinpath(key).is_dir():
+        return False  # +group=option: a config group
+    head, _, name = key.rpartition(".")
+    parent = OmegaConf.select(cfg, head) if head else cfg
+    schema = OmegaConf.get_type(parent) if OmegaConf.is_config(parent) else None
+    if schema is None or not dataclasses.is_dataclass(schema):
+        return not OmegaConf.is_config(parent)  # under a free-form mapping: the user's own key
+    return name not in {f.name for f in dataclasses.fields(schema)}
 
 
 def run_job(cfg) -> int:
@@ -77,6 +110,7 @@ def run_job(cfg) -> int:
     from omegaconf import OmegaConf
 
     from . import pipeline, recorder, report, tracking
+    from .teachers import TeacherTrainingFailed
 
     try:
         validate(cfg)
@@ -85,23 +119,39 @@ def run_job(cfg) -> int:
             OmegaConf.set_struct(cfg, False)
             cfg.run_dir = HydraConfig.get().runtime.output_dir
             OmegaConf.set_struct(cfg, True)
+        data = pipeline.preflight(cfg)  # before anything is written, to the run folder or the store
         if cfg.dry_run:
             print(pipeline.describe_plan(cfg, pipeline.plan_stages(cfg)))
             return 0
-        data = pipeline.preflight(cfg)  # before anything is written, to the run folder or the store
         with recorder.recorder_for(cfg) as rec:
             summary = pipeline.run(cfg, rec, recipe_name(), data)
     except user_errors() as e:
         fail(str(e))
+    except TeacherTrainingFailed as e:
+        fail(str(e), EXIT_STAGE_FAILED)
+    except (MemoryError, RuntimeError) as e:
+        if not pipeline.is_out_of_memory(e):
+            raise
+        fail(f"out of memory ({' '.join(str(e).split())[:120]}); lower eval.samples, teacher.batch_size, "
+             "method.batch_size or the network sizes (net.*), then rerun with fresh=true or another run_dir")
     print(report.stage_table(summary))
     print(f"run folder: {cfg.run_dir}")
     if cfg.tracking.enabled:
         print(f"MLflow: {tracking.ui_hint(cfg.tracking.uri)}")
     if summary["failed"]:
-        print("a stage failed: lower method.lr or raise method.grad_clip, then rerun the same command to resume",
-              file=sys.stderr)
-        sys.exit(EXIT_STAGE_FAILED)
+        fail(failed_stage_line(cfg, summary), EXIT_STAGE_FAILED)
     return 0
+
+
+def failed_stage_line(cfg, summary: dict) -> str:
+    """What failed, what to change, and what is kept (one line)."""
+    last = summary["stages"][-1]
+    m = cfg.method
+    kept = f"the stages before it are kept (chosen: {summary['chosen']['folder']})" if summary["chosen"] else \
+        "the teacher is kept"
+    return (f"stage {last['index']} ({last['steps']} steps) failed: {last['rule']}; lower method.lr (now {m.lr:g}) "
+            f"or method.grad_clip (now {m.grad_clip:g}) and rerun with fresh=true or another run_dir; "
+            f"{kept} in {cfg.run_dir}")
 
 
 def recipe_name() -> str | None:

@@ -142,6 +142,7 @@ class RunConfig:
     dry_run: bool = False  # print the plan and exit
     quiet: bool = False  # no progress bars
     fresh: bool = False  # allow reusing a run folder made by a different config (discards its stages)
+    checkpoint_every: int = 500  # iterations between resume points of teacher and stages: a kill loses at most these
 
 
 def register_configs() -> None:
@@ -205,7 +206,7 @@ def validate(cfg: DictConfig) -> None:
             raise ConfigError("teacher.weights", cfg.teacher.weights, "no such file (a .safetensors state dict)")
     _positive(cfg, ["data.n_train", "teacher.steps", "teacher.iterations", "teacher.batch_size", "teacher.lr",
                     "eval.samples", "eval.projections", "eval.bootstrap", "compute.threads",
-                    "method.iterations", "method.batch_size", "method.lr"])
+                    "method.iterations", "method.batch_size", "method.lr", "checkpoint_every"])
     if not 0 <= cfg.teacher.ema_decay < 1:
         raise ConfigError("teacher.ema_decay", cfg.teacher.ema_decay, "must be in [0, 1)")
     if cfg.teacher.warmup < 0:

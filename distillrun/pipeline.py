@@ -5,9 +5,12 @@ Run folder (resumable; every file written atomically, a stage counts as done onc
   plan.json              the stages: student steps, teacher steps, iterations
   teacher/               weights.safetensors + model.json of the teacher network (or the oracle-fitted init)
   reference.json         teacher-at-full-steps and floor quality on the fixed noise bank
-  stage-NN/              weights.safetensors, model.json, metrics.json, samples.png; partial.* while training
+  stage-NN/              weights.safetensors, model.json, metrics.json, samples.png, loss.json; while training
+                         partial.safetensors, the mid-run state every checkpoint_every iterations (weights, EMA,
+                         Adam moments, LR schedule, batch/noise generator, losses, iteration; as teacher/ has)
   summary.json           every stage with its verdict, why the run stopped, and the chosen student
   tracking.json          MLflow run ids, so a resumed run continues its records
+  .lock                  held (flock) by the one process writing the folder
 """
 from __future__ import annotations
 
@@ -17,19 +20,17 @@ import time
 from pathlib import Path
 
 import torch
-from omegaconf import DictConfig, OmegaConf
+from omegaconf import DictConfig
 
-from . import checkpoint, evaluate, report, stopping
+from . import checkpoint, evaluate, report, runfolder, stopping, training
 from .data import load_dataset
 from .stages import StageSpec, method_for, teacher_sampler
-from .teachers import Teacher, prepare_teacher
+from .teachers import Teacher, import_teacher, prepare_teacher
 
-# Keys that may change between a run and its resume: they do not change what a stage computes.
-RESUMABLE_KEYS = ("run_dir", "dry_run", "quiet", "fresh", "tracking", "stop", "compute")
-
-
-class RunFolderError(ValueError):
-    """The run folder cannot be used as asked; str() is one line."""
+RunFolderError = runfolder.RunFolderError  # re-exported: the CLI and tests name it here
+open_run_dir = runfolder.open_run_dir
+METRICS_FIELDS = {"index": int, "steps": int, "teacher_steps": int, "method": str, "iterations": int,
+                  "failed": (str, type(None)), "metrics": dict, "seconds": dict}  # a stage's metrics.json
 
 
 class DataError(ValueError):
@@ -41,25 +42,66 @@ def load_data(cfg):
         return load_dataset(cfg.data)
     except (ValueError, OSError) as e:
         raise DataError(f"data ({cfg.data.name}): {e}") from None
+    except (MemoryError, RuntimeError) as e:  # torch and numpy refuse an allocation larger than the machine
+        if not is_out_of_memory(e):
+            raise
+        raise DataError(f"data.n_train={cfg.data.n_train}: the {cfg.data.name} data does not fit in memory; "
+                        "lower data.n_train") from None
+
+
+def is_out_of_memory(e: BaseException) -> bool:
+    return isinstance(e, MemoryError) or "can't allocate memory" in str(e) or "out of memory" in str(e).lower()
 
 
 def preflight(cfg: DictConfig):
-    """Everything that can be checked before any file is written or any training starts: the data, the
-    user's teacher (import, weights, one forward pass), the tracking store. Returns the loaded data."""
+    """Everything that can be checked before any file is written or any training starts: the data, one forward
+    pass of the configured network on it, the user's teacher (import, weights, one forward pass), the run
+    folder's config, the tracking store. Returns the loaded data. The global RNG is left as it was."""
     data = load_data(cfg)
-    if cfg.teacher.source == "import":
-        from .methods.teacher import import_teacher_net
-        import_teacher_net(cfg.teacher.factory, cfg.teacher.factory_kwargs, cfg.teacher.weights, data.shape,
-                           data.num_classes if cfg.net.class_cond else 0)
+    if cfg.data.path and cfg.data.name in ("array", "image_folder"):
+        _check_spread(cfg, data)
     if cfg.net.kind == "mlp" and data.is_image or cfg.net.kind == "unet" and not data.is_image:
         raise DataError(f"net.kind={cfg.net.kind} does not fit data of shape {data.shape}; "
                         f"use net={'unet' if data.is_image else 'mlp'}")
     if cfg.net.class_cond and data.labels is None:
         raise DataError(f"net.class_cond=true but data.name={cfg.data.name} has no labels")
+    with torch.random.fork_rng(devices=[]):  # user code and network init must not shift the run's seed
+        if cfg.teacher.source == "import":
+            import_teacher(cfg.teacher.factory, cfg.teacher.factory_kwargs, cfg.teacher.weights, data.shape,
+                           data.num_classes if cfg.net.class_cond else 0)
+        else:
+            _try_network(cfg, data)
+    runfolder.check(cfg)
     if cfg.tracking.enabled:
         from .tracking import check_reachable
         check_reachable(cfg.tracking.uri)
     return data
+
+
+def _check_spread(cfg, data) -> None:
+    """Quality metrics scale distances by the median pairwise one, which is 0 when most samples coincide."""
+    _, counts = torch.unique(data.x.flatten(1), dim=0, return_counts=True)
+    if 2 * int(counts.max()) > len(data.x):
+        raise DataError(f"data.path={cfg.data.path}: {int(counts.max())} of its {len(data.x)} samples are one and the "
+                        "same point; valid: at least 2 samples, none repeated in more than half of them")
+
+
+def _try_network(cfg, data) -> None:
+    """Build the configured network and run it on two data points: a size it cannot take fails here."""
+    from .methods.teacher import network_for
+
+    try:
+        net, _ = network_for(cfg, data)
+        with torch.no_grad():
+            out = net(data.x[:2], torch.full((min(2, len(data.x)),), 0.5),
+                      data.labels[:2] if cfg.net.class_cond else None)
+        assert out.shape == data.x[:2].shape, f"output shape {tuple(out.shape)}"
+    except Exception as e:  # the sizes do not fit together: name the keys, not the layer
+        first = (str(e).strip().splitlines() or [type(e).__name__])[0][:160]
+        sizes = ("width", "depth") if cfg.net.kind == "mlp" else ("base", "mults")
+        shown = ", ".join(f"net.{k}={list(cfg.net[k]) if k == 'mults' else cfg.net[k]}" for k in sizes)
+        raise DataError(f"net={cfg.net.kind} ({shown}) cannot take data of shape {data.shape} ({first}); "
+                        f"change those sizes or the data") from None
 
 
 def plan_stages(cfg: DictConfig) -> list[StageSpec]:
@@ -73,49 +115,19 @@ def describe_plan(cfg: DictConfig, stages: list[StageSpec]) -> str:
     return "\n".join(lines)
 
 
-def open_run_dir(cfg: DictConfig) -> Path:
-    """Create or reuse the run folder; refuse one made by a config that differs in keys that matter."""
-    run_dir = Path(cfg.run_dir)
-    saved = run_dir / "config.yaml"
-    current = OmegaConf.to_container(cfg, resolve=True)
-    if saved.exists():
-        try:
-            before = OmegaConf.to_container(OmegaConf.load(saved), resolve=True)
-        except Exception:
-            raise RunFolderError(f"{saved}: unreadable config; delete the run folder or pass fresh=true") from None
-        changed = sorted(_diff(before, current))
-        if changed and not cfg.fresh:
-            raise RunFolderError(f"{run_dir} was made by a different config (changed: {', '.join(changed[:8])}); "
-                                 "use another run_dir, or fresh=true to discard its stages")
-        if changed:
-            for p in run_dir.iterdir():
-                shutil.rmtree(p) if p.is_dir() else p.unlink()
-    run_dir.mkdir(parents=True, exist_ok=True)
-    checkpoint.atomic_write_bytes(saved, OmegaConf.to_yaml(cfg, resolve=True).encode())
-    return run_dir
-
-
-def _diff(a: dict, b: dict, prefix: str = "") -> set[str]:
-    keys = set(a) | set(b)
-    out = set()
-    for k in keys:
-        key = f"{prefix}{k}"
-        if not prefix and k in RESUMABLE_KEYS:
-            continue
-        if isinstance(a.get(k), dict) and isinstance(b.get(k), dict):
-            out |= _diff(a[k], b[k], key + ".")
-        elif a.get(k) != b.get(k):
-            out.add(key)
-    return out
-
-
 def reference_quality(cfg, bench, teacher: Teacher, run_dir: Path) -> dict:
     """Teacher at full steps and the floor, computed once per run and cached in reference.json."""
     path = run_dir / "reference.json"
     samples, secs = evaluate.cached_draw(bench, f"teacher@{cfg.teacher.steps}",
                                          teacher_sampler(teacher.denoiser, cfg.teacher.steps, cfg.teacher.sampler))
     if path.exists():
-        return checkpoint.read_json(path, {"teacher": dict, "floor": dict})
+        hint = f"delete {path} to recompute it"
+        ref = checkpoint.read_json(path, {"teacher": dict, "floor": dict, "steps": int}, hint)
+        if ref["steps"] != cfg.teacher.steps:
+            raise checkpoint.CheckpointError(f"{path}: made for teacher.steps={ref['steps']}, not {cfg.teacher.steps}; "
+                                             f"{hint}")
+        return ref
+    checkpoint.kill_point("reference:evaluate")
     t0 = time.perf_counter()
     ref = {"teacher": evaluate.quality(bench, samples), "floor": evaluate.quality(bench, bench.floor_set),
            "steps": cfg.teacher.steps, "seconds": secs + time.perf_counter() - t0}
@@ -163,7 +175,15 @@ def run(cfg: DictConfig, recorder, recipe: str | None = None, data=None) -> dict
     torch.manual_seed(cfg.seed)
     data = data if data is not None else preflight(cfg)
     stages = plan_stages(cfg)
-    run_dir = open_run_dir(cfg)
+    run_dir = open_run_dir(cfg)  # locked for this process until the end of the run
+    try:
+        with training.checkpoint_interval(cfg.checkpoint_every):
+            return _run(cfg, recorder, recipe, data, stages, run_dir)
+    finally:
+        runfolder.unlock(run_dir)
+
+
+def _run(cfg: DictConfig, recorder, recipe, data, stages: list[StageSpec], run_dir: Path) -> dict:
     checkpoint.atomic_write_json(run_dir / "plan.json", [vars(s) for s in stages])
     recorder.start(run_dir, recipe)
     teacher = prepare_teacher(cfg, data, run_dir)
@@ -188,22 +208,34 @@ def run(cfg: DictConfig, recorder, recipe: str | None = None, data=None) -> dict
         if cfg.method.name == "progressive":
             stage_teacher = student
     summary = summarize(cfg, stages, records, reference, run_dir)
-    report.write_plots(summary, run_dir)
+    if any(r["metrics"] for r in records):  # no point to draw when stage 1 failed (the log axis needs one)
+        report.write_plots(summary, run_dir)
     recorder.finish(summary, run_dir)
     return summary
 
 
+def finished_record(done: Path, spec: StageSpec) -> dict:
+    """A stage's metrics.json (its completion marker), checked against the fields and the stage it is for."""
+    hint = f"delete {done.parent} to run the stage again"
+    record = checkpoint.read_json(done, METRICS_FIELDS, hint)
+    if (record["index"], record["steps"]) != (spec.index, spec.steps):
+        raise checkpoint.CheckpointError(f"{done}: is for stage {record['index']} at {record['steps']} steps, "
+                                         f"not stage {spec.index} at {spec.steps}; {hint}")
+    return record
+
+
 def run_stage(cfg, spec, method, stage_teacher, previous, data, bench, teacher, previous_samples, run_dir):
-    """Train (or load, if already done) one stage and evaluate it."""
+    """Train (or load, if already done) one stage and evaluate it. A kill at any point leaves either a
+    finished stage (metrics.json written last) or one that trains again from its last mid-run state."""
     stage_dir = run_dir / f"stage-{spec.index:02d}"
     student = method.make_student(cfg, previous, data)
     done = stage_dir / "metrics.json"
     if done.exists():
-        record = checkpoint.read_json(done, {"index": int, "steps": int, "metrics": dict})
+        record = finished_record(done, spec)
         if record["failed"] is None:
-            state, _ = checkpoint.load_model_files(stage_dir)
-            student.load_state_dict(state)
+            runfolder.load_model_into(student, stage_dir)
             student.requires_grad_(False)
+            (stage_dir / "partial.safetensors").unlink(missing_ok=True)  # a kill came between metrics.json and this
             return record, student, evaluate.draw(method.sampler(cfg, student, spec.steps), bench)
         shutil.rmtree(stage_dir)  # a failed stage is tried again from its start
     stage_dir.mkdir(parents=True, exist_ok=True)
@@ -215,9 +247,11 @@ def run_stage(cfg, spec, method, stage_teacher, previous, data, bench, teacher, 
         record = stage_record(cfg, spec, {}, result, 0.0)
         checkpoint.atomic_write_json(done, record)
         return record, student, None
+    checkpoint.kill_point(f"{stage_dir.name}:evaluate")
     metrics, x, eval_seconds = evaluate_stage(cfg, bench, spec, method, student, teacher, previous_samples)
     record = stage_record(cfg, spec, metrics, result, eval_seconds)
     checkpoint.save_model(stage_dir, student.state_dict(), teacher.student_meta(cfg, spec))
+    checkpoint.kill_point(f"{stage_dir.name}:weights")
     checkpoint.atomic_write_json(stage_dir / "loss.json", {"loss": result.losses})
     report.sample_picture(x, bench, stage_dir / "samples.png", f"{cfg.method.name} stage {spec.index}: {spec.steps} steps")
     checkpoint.atomic_write_json(done, record)

@@ -11,9 +11,9 @@ from dataclasses import dataclass
 import torch
 from omegaconf import OmegaConf
 
-from . import checkpoint
+from . import checkpoint, runfolder
 from .denoiser import NetDenoiser
-from .methods.teacher import denoising_loss, import_teacher_net, network_for, oracle_fit_loss
+from .methods.teacher import TeacherError, _check_forward, denoising_loss, network_for, oracle_fit_loss
 from .nets import build_net
 from .nets.oracle import OracleDenoiser
 from .schedule import Schedule
@@ -55,8 +55,8 @@ def prepare_teacher(cfg, data, run_dir) -> Teacher:
     schedule = Schedule(cfg.teacher.schedule)
     folder = run_dir / "teacher"
     if cfg.teacher.source == "import":
-        net = import_teacher_net(cfg.teacher.factory, cfg.teacher.factory_kwargs, cfg.teacher.weights,
-                                 data.shape, data.num_classes if cfg.net.class_cond else 0)
+        net = import_teacher(cfg.teacher.factory, cfg.teacher.factory_kwargs, cfg.teacher.weights,
+                             data.shape, data.num_classes if cfg.net.class_cond else 0)
         arch = {"kind": "import", "factory": cfg.teacher.factory,
                 "factory_kwargs": OmegaConf.to_container(cfg.teacher.factory_kwargs, resolve=True),
                 "data_shape": list(data.shape), "num_classes": data.num_classes if cfg.net.class_cond else 0}
@@ -67,22 +67,23 @@ def prepare_teacher(cfg, data, run_dir) -> Teacher:
     oracle = OracleDenoiser(data.mixture, schedule) if cfg.teacher.source == "oracle" else None
     losses, seconds = [], 0.0
     if (folder / "model.json").exists():
-        state, meta = checkpoint.load_model_files(folder)
-        den.load_state_dict(state)
+        meta = runfolder.load_model_into(den, folder)
         losses, seconds = meta.get("losses", []), meta.get("seconds", 0.0)
+        (folder / "partial.safetensors").unlink(missing_ok=True)  # a kill came between model.json and this
     else:
         folder.mkdir(parents=True, exist_ok=True)
         t = cfg.teacher
         spec = LoopSpec(iterations=t.iterations, lr=t.lr, warmup=t.warmup, decay="cosine", grad_clip=t.grad_clip,
-                        ema_decay=t.ema_decay)
+                        ema_decay=t.ema_decay, save_every=cfg.checkpoint_every)
         loss_fn = oracle_fit_loss(oracle) if oracle is not None else denoising_loss
         draw = data.batches(t.batch_size, device)
         g = torch.Generator().manual_seed(cfg.seed)
         result = train_loop(den, loss_fn, draw, spec, generator=g, state_path=folder / "partial.safetensors",
                             desc="teacher", quiet=cfg.quiet)
         if result.failed:
-            raise TeacherTrainingFailed(f"teacher training failed: {result.failed}; try a lower teacher.lr "
-                                        f"(now {t.lr}) or teacher.grad_clip (now {t.grad_clip})")
+            raise TeacherTrainingFailed(f"teacher training failed: {result.failed}; lower teacher.lr (now {t.lr:g}) "
+                                        f"or teacher.grad_clip (now {t.grad_clip:g}), then rerun with fresh=true "
+                                        "or another run_dir")
         den = result.model
         losses, seconds = result.losses, result.seconds
         meta = {"net": arch, "parameterization": t.parameterization, "schedule": t.schedule, "method": "teacher",
@@ -95,7 +96,47 @@ def prepare_teacher(cfg, data, run_dir) -> Teacher:
 
 
 class TeacherTrainingFailed(RuntimeError):
-    pass
+    """The teacher's loss became NaN/inf or its gradient exploded; str() is one line with what to change."""
+
+
+def import_teacher(factory: str, factory_kwargs, weights: str, data_shape, num_classes: int) -> torch.nn.Module:
+    """The user's network: build it from 'package.module:function', load its safetensors weights (strict,
+    finite) and check one forward pass on a dummy batch. Any fault is one TeacherError line naming the key.
+    The weights are read by safetensors only, so nothing the user supplies is unpickled."""
+    import importlib
+
+    module_name, _, fn_name = factory.partition(":")
+    key = f"teacher.factory={factory!r}"
+    try:
+        fn = getattr(importlib.import_module(module_name), fn_name)
+    except Exception as e:  # ImportError, SyntaxError, or whatever the module raises while importing
+        raise TeacherError(f"{key}: cannot import ({type(e).__name__}: {_first_line(e)}); "
+                           "is its folder on PYTHONPATH?") from None
+    try:
+        net = fn(**dict(factory_kwargs or {}))
+    except Exception as e:  # the user's code: report, don't trace
+        raise TeacherError(f"{key}: calling it failed ({type(e).__name__}: {_first_line(e)})") from None
+    if not isinstance(net, torch.nn.Module):
+        raise TeacherError(f"{key}: returned {type(net).__name__}, expected a torch.nn.Module")
+    try:
+        state = checkpoint.read_tensors(weights)
+    except checkpoint.CheckpointError as e:
+        raise TeacherError(f"teacher.weights: {e}") from None
+    bad = [k for k, v in state.items() if v.is_floating_point() and not torch.isfinite(v).all()]
+    if bad:
+        raise TeacherError(f"teacher.weights={weights!r}: tensor '{bad[0]}' holds NaN or inf values")
+    try:
+        net.load_state_dict(state, strict=True)
+    except RuntimeError as e:
+        lines = [ln.strip() for ln in str(e).splitlines() if ln.strip()]
+        raise TeacherError(f"teacher.weights={weights!r}: does not match the module from {factory} "
+                           f"({lines[1] if len(lines) > 1 else lines[0]})") from None
+    _check_forward(net, data_shape, num_classes, factory)
+    return net
+
+
+def _first_line(e: Exception) -> str:
+    return (str(e).strip().splitlines() or [""])[0][:200]
 
 
 def rebuild_network(arch: dict):

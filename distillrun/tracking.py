@@ -8,6 +8,8 @@ methods do nothing, so pipeline code needs no ifs.
 """
 from __future__ import annotations
 
+import contextlib
+import fcntl
 import os
 import shlex
 import time
@@ -24,6 +26,12 @@ PARENT_TAG = "mlflow.parentRunId"
 ROLE_TAG = "distillrun.role"  # pipeline | stage
 CHANGED_TAG = "distillrun.params_changed"  # params whose value differs on a resumed run
 STATUSES = ("FINISHED", "FAILED", "KILLED")
+# SQLite lets one writer in at a time and gives up after its busy timeout (5 s in Python's sqlite3); a call
+# that failed with "database is locked" was rolled back, so it is retried with backoff (0.05 s doubling,
+# about 25 s in all) before the run is stopped. The first connection to a new store (table creation)
+# is serialised across processes by a lock file next to it, waited for at most STORE_LOCK_WAIT_S.
+LOCKED_RETRIES = 9
+STORE_LOCK_WAIT_S = 120.0
 
 
 class TrackingError(RuntimeError):
@@ -107,6 +115,37 @@ def check_reachable(uri: str, timeout: float = REACH_TIMEOUT_S) -> None:
         _check_writable(uri, path)
 
 
+@contextlib.contextmanager
+def _store_lock(uri: str):
+    """Hold .<store>.lock (POSIX flock) while connecting to a local SQLite store: two processes creating a new
+    store's tables at once collide in MLflow's schema migration (e.g. "duplicate column name")."""
+    path = _sqlite_path(uri) if urlparse(uri).scheme == "sqlite" else None
+    fd = None
+    if path is not None:
+        path = path.with_name(f".{path.name}.lock")
+        with contextlib.suppress(OSError):  # no folder yet: MLflow itself reports that, in one line
+            fd = os.open(path, os.O_RDWR | os.O_CREAT, 0o666)
+    try:
+        deadline = time.monotonic() + STORE_LOCK_WAIT_S
+        while fd is not None:
+            try:
+                fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+                break
+            except BlockingIOError:
+                if time.monotonic() > deadline:
+                    raise TrackingError(f"tracking store {uri}: {path} stayed held for "
+                                        f"{STORE_LOCK_WAIT_S:.0f} s by another process") from None
+                time.sleep(0.05)
+        yield
+    finally:
+        if fd is not None:
+            os.close(fd)
+
+
+def _is_locked(exc: Exception) -> bool:
+    return "database is locked" in str(exc) or "database table is locked" in str(exc)
+
+
 def ui_hint(uri: str) -> str:
     """The command (or address) that shows this store in the MLflow UI, usable from any folder."""
     if urlparse(uri).scheme in ("http", "https"):
@@ -164,18 +203,23 @@ class Tracker:
         from mlflow import MlflowClient
 
         tracker = cls(None, uri, "")
-        tracker.client = tracker._call("connect", MlflowClient, tracking_uri=uri)
-        tracker.experiment_id = tracker._call("open experiment", tracker._experiment, experiment, artifact_location)
+        with _store_lock(uri):
+            tracker.client = tracker._call("connect", MlflowClient, tracking_uri=uri)
+            tracker.experiment_id = tracker._call("open experiment", tracker._experiment, experiment, artifact_location)
         return tracker
 
     def _call(self, what: str, fn, *args, **kwargs):
-        try:
-            return fn(*args, **kwargs)
-        except TrackingError:
-            raise
-        except Exception as exc:  # MlflowException, connection and database errors
-            message = _truncate(_one_line(exc), 300)
-            raise TrackingError(f"tracking store {self.uri}: {what} failed ({message})") from exc
+        for attempt in range(LOCKED_RETRIES + 1):
+            try:
+                return fn(*args, **kwargs)
+            except TrackingError:
+                raise
+            except Exception as exc:  # MlflowException, connection and database errors
+                if attempt < LOCKED_RETRIES and _is_locked(exc):
+                    time.sleep(0.05 * 2 ** attempt)
+                    continue
+                message = _truncate(_one_line(exc), 300)
+                raise TrackingError(f"tracking store {self.uri}: {what} failed ({message})") from exc
 
     def _experiment(self, name: str, artifact_location: str | None) -> str:
         exp = self.client.get_experiment_by_name(name)
@@ -201,6 +245,7 @@ class Tracker:
         self._call(f"reopen run {run_id}", self.client.update_run, run_id, status="RUNNING")
 
     def _create(self, name: str, tags: dict) -> str:
+        tags = {str(k): _truncate(str(v), TAG_VALUE_LIMIT) for k, v in tags.items()}  # set with the run, atomically
         run = self._call("create run", self.client.create_run, self.experiment_id, run_name=name, tags=tags)
         return run.info.run_id
 
@@ -209,7 +254,7 @@ class Tracker:
         """Create the parent run, or reopen resume_run_id and keep logging to it."""
         if resume_run_id:
             self._reopen(resume_run_id, parent=None)
-        run_id = resume_run_id or self._create(name, {ROLE_TAG: "pipeline"})
+        run_id = resume_run_id or self._create(name, {ROLE_TAG: "pipeline", **(tags or {})})
         self.pipeline_run_id, self.stage_run_id = run_id, None
         self.set_tags(tags or {})
         self.log_params(params or {})
@@ -225,7 +270,7 @@ class Tracker:
         if resume_run_id:
             self._reopen(resume_run_id, parent=self.pipeline_run_id)
         self.stage_run_id = resume_run_id or self._create(
-            name, {PARENT_TAG: self.pipeline_run_id, ROLE_TAG: "stage"})
+            name, {PARENT_TAG: self.pipeline_run_id, ROLE_TAG: "stage", **(tags or {})})
         self.set_tags(tags or {})
         self.log_params(params or {})
         return self.stage_run_id
@@ -309,6 +354,22 @@ class Tracker:
         items = [RunTag(str(k), _truncate(str(v), TAG_VALUE_LIMIT)) for k, v in tags.items()]
         if items:
             self._log_batch(self._active(), tags=items)
+
+    def find_run(self, tags: Mapping[str, str]) -> str | None:
+        """Id of the earliest run of the experiment carrying all these tags (set when it was created), or None:
+        how a run created just before a crash, whose id never reached the caller's records, is found again."""
+        where = " and ".join(f"tags.`{k}` = '{v}'" for k, v in tags.items())
+        runs = self._call("search runs", self.client.search_runs, [self.experiment_id], filter_string=where,
+                          order_by=["attributes.start_time ASC"], max_results=1)
+        return runs[0].info.run_id if runs else None
+
+    def logged_metrics(self) -> dict[str, float]:
+        """Latest value of every metric of the active run: what a resumed run need not log again."""
+        return dict(self._call("read metrics", self.client.get_run, self._active()).data.metrics)
+
+    def series_length(self, name: str) -> int:
+        """How many values of metric `name` the active run holds (where a resumed curve continues)."""
+        return len(self._call("read metric history", self.client.get_metric_history, self._active(), name))
 
     def stage_runs(self) -> dict[str, str]:
         """Stage run name -> run id for the open pipeline run (the latest run per name)."""

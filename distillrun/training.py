@@ -6,8 +6,10 @@ for resume, and the progress bar, so those are written (and tested) once.
 """
 from __future__ import annotations
 
+import contextlib
 import math
 import time
+from contextvars import ContextVar
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Callable
@@ -23,6 +25,19 @@ from . import checkpoint
 # A clipped step is still taken when the gradient norm is large; only a norm this far beyond any
 # sane value ends the run as diverged (common practice: clip at ~1, treat 1e4x that as divergence).
 EXPLODED_GRAD_NORM = 1e4
+# Iterations between mid-run states for loops whose LoopSpec leaves save_every unset: the run's
+# checkpoint_every, set by the pipeline for its duration (see checkpoint_interval).
+_CHECKPOINT_EVERY: ContextVar[int] = ContextVar("checkpoint_every", default=500)
+
+
+@contextlib.contextmanager
+def checkpoint_interval(every: int):
+    """Within this block, loops without an explicit LoopSpec.save_every save their state every `every` iterations."""
+    token = _CHECKPOINT_EVERY.set(int(every))
+    try:
+        yield
+    finally:
+        _CHECKPOINT_EVERY.reset(token)
 
 
 @dataclass
@@ -33,7 +48,7 @@ class LoopSpec:
     decay: str = "linear"  # linear | cosine | none: LR after warm-up, ending at 0 (none: constant)
     grad_clip: float = 1.0
     ema_decay: float = 0.0  # 0: no EMA copy, the target network is the model itself
-    save_every: int = 500  # iterations between mid-run states (resume points)
+    save_every: int | None = None  # iterations between mid-run states (resume points); None: checkpoint_interval
 
 
 @dataclass
@@ -97,15 +112,26 @@ def _state_tensors(model, ema, opt, sched, generator, losses, it):
 
 
 def _restore(path, model, ema, opt, sched, generator):
+    """Put model, EMA, optimizer, LR scheduler and data/noise generator back as they were after iteration
+    meta["iteration"]; returns (that iteration, the losses so far). Any mismatch is one CheckpointError."""
     tensors, meta = checkpoint.load_state(path)
     pick = lambda prefix: {k[len(prefix):]: v for k, v in tensors.items() if k.startswith(prefix)}  # noqa: E731
-    model.load_state_dict(pick("model."))
-    if ema is not model:
-        ema.load_state_dict(pick("ema."))
-    opt.load_state_dict(checkpoint.unflatten_optimizer_state(pick("opt."), meta["optimizer"]))
-    sched.load_state_dict(meta["scheduler"])
-    generator.set_state(tensors["rng"])
-    return meta["iteration"], tensors["losses"].tolist()
+    try:
+        model.load_state_dict(pick("model."))
+        if ema is not model:
+            ema.load_state_dict(pick("ema."))
+        opt.load_state_dict(checkpoint.unflatten_optimizer_state(pick("opt."), meta["optimizer"]))
+        sched.load_state_dict(meta["scheduler"])
+        generator.set_state(tensors["rng"])
+        it, losses = int(meta["iteration"]), tensors["losses"].tolist()
+    except (KeyError, TypeError, ValueError, RuntimeError, checkpoint.CheckpointError) as exc:
+        first = (str(exc).strip().splitlines() or [type(exc).__name__])[0][:160]
+        raise checkpoint.CheckpointError(f"{path}: does not fit this training run ({first}); "
+                                         "delete it to restart the stage from its beginning") from None
+    if len(losses) != it:
+        raise checkpoint.CheckpointError(f"{path}: holds {len(losses)} losses for iteration {it}; "
+                                         "delete it to restart the stage from its beginning")
+    return it, losses
 
 
 def _check(loss: torch.Tensor, grad_norm: torch.Tensor, it: int) -> str | None:
@@ -120,7 +146,12 @@ def train_loop(model: nn.Module, loss_fn: Callable, draw_batch: Callable, spec: 
                generator: torch.Generator, state_path: Path | None = None, desc: str = "train",
                quiet: bool = False) -> LoopResult:
     """Run spec.iterations of Adam on loss_fn(model, target, draw_batch(generator), generator).
-    With state_path, a mid-run state is saved every spec.save_every iterations and resumed if present."""
+    With state_path, a mid-run state is saved every spec.save_every iterations and resumed if present:
+    weights, EMA copy (with its update count), Adam moments and step counts, LR scheduler, the generator
+    that draws batches and noise, the losses so far and the iteration. Resuming from it continues bit for
+    bit (same thread count), because every random draw of the loop comes from `generator`."""
+    save_every = spec.save_every or _CHECKPOINT_EVERY.get()
+    kill_label = Path(state_path).parent.name if state_path is not None and checkpoint.KILL_AT else None
     opt = torch.optim.Adam([p for p in model.parameters() if p.requires_grad], lr=spec.lr)
     sched = make_scheduler(opt, spec)
     ema = make_ema(model, spec.ema_decay)
@@ -146,8 +177,10 @@ def train_loop(model: nn.Module, loss_fn: Callable, draw_batch: Callable, spec: 
         losses.append(loss.item())
         if it % 50 == 0:
             bar.set_postfix(loss=f"{losses[-1]:.4g}")
-        if state_path is not None and (it + 1) % spec.save_every == 0 and it + 1 < spec.iterations:
+        if state_path is not None and (it + 1) % save_every == 0 and it + 1 < spec.iterations:
             checkpoint.save_state(state_path, *_state_tensors(model, ema, opt, sched, generator, losses, it + 1))
+        if kill_label:
+            checkpoint.kill_point(f"{kill_label}:iteration={it + 1}")
     bar.close()
     result.seconds = time.perf_counter() - t0
     result.losses = losses

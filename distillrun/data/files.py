@@ -43,7 +43,8 @@ def _read(path: Path, key: str | None) -> tuple[np.ndarray, np.ndarray | None]:
         return _read_npz(path, key)
     except ValueError as err:
         if "allow_pickle" not in str(err):
-            raise
+            _fail(path, f"cannot be read ({' '.join(str(err).split())[:160]}); "
+                        "valid: complete files written by numpy.save or numpy.savez")
         _fail(path, "is not a numeric numpy array (reading it needs pickle, which is refused); "
                     "save one with numpy.save or numpy.savez")
     except (OSError, EOFError, zipfile.BadZipFile) as err:
