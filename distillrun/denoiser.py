@@ -64,6 +64,11 @@ class NetDenoiser(nn.Module):
         return self.net(x_t, as_batch_times(t, x_t), cond)
 
     def predict(self, x_t, t, cond=None):
+        return self.predictions(x_t, t, self(x_t, t, cond))
+
+    def predictions(self, x_t, t, out):
+        """(x0_hat, eps_hat) from a raw output `out` at (x_t, t); split from predict so a data-parallel
+        wrapper can run the forward pass itself (distributed.Replicated)."""
         t = as_batch_times(t, x_t)
         alpha, sigma = (broadcast(c, x_t) for c in self.schedule.alpha_sigma(t))
-        return predictions_from_output(self.parameterization, x_t, self(x_t, t, cond), alpha, sigma)
+        return predictions_from_output(self.parameterization, x_t, out, alpha, sigma)

@@ -17,6 +17,7 @@ import torch
 from torch import nn
 
 from ..denoiser import Denoiser, NetDenoiser
+from ..distributed import current_shard
 from ..schedule import broadcast, karras_sigmas
 
 SOLVERS = ("heun", "euler")
@@ -188,6 +189,7 @@ def consistency_loss(teacher: Denoiser, cfg, sigma_data: float, dim: int):
         x0, cond = batch
         n = torch.randint(0, sigmas.shape[0] - 1, (x0.shape[0],), generator=generator)
         z = torch.randn(x0.shape, generator=generator).to(x0.device)
+        x0, cond, n, z = current_shard().local(x0, cond, n, z)  # this rank's rows of the global batch
         sigma_n, sigma_next = sigmas[n].to(x0.device), sigmas[n + 1].to(x0.device)
         x_next = x0 + broadcast(sigma_next, x0) * z
         with torch.no_grad():

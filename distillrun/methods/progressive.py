@@ -6,6 +6,7 @@ from __future__ import annotations
 import torch
 
 from ..denoiser import Denoiser, NetDenoiser
+from ..distributed import current_shard
 from ..schedule import broadcast
 
 
@@ -53,6 +54,7 @@ def progressive_loss(teacher: Denoiser, steps: int, kind: str = "snr_trunc"):
         alpha, sigma = (broadcast(c, x0) for c in model.schedule.alpha_sigma(t))
         eps = torch.randn(x0.shape, generator=generator).to(x0.device)
         x_t = alpha * x0 + sigma * eps
+        x0, cond, t, x_t = current_shard().local(x0, cond, t, x_t)  # this rank's rows of the global batch
         x_tilde = two_teacher_steps(teacher, x_t, t, steps, cond)
         x0_hat, _ = model.predict(x_t, t.to(x0.dtype), cond)
         err = ((x0_hat - x_tilde) ** 2).flatten(1).mean(1)

@@ -6,12 +6,11 @@ x_t = alpha_t x0 + sigma_t eps, loss = ||net(x_t, t) - target||^2 with target = 
 from __future__ import annotations
 
 import importlib
-from dataclasses import dataclass
-
 import torch
 from torch import nn
 
 from ..denoiser import NetDenoiser, target_for
+from ..distributed import current_shard
 from ..nets import build_net
 from ..schedule import Schedule, broadcast
 
@@ -28,9 +27,11 @@ def draw_noisy(x0: torch.Tensor, schedule: Schedule, generator: torch.Generator)
 
 
 def denoising_loss(model: NetDenoiser, target_model, batch, generator):
-    """Mean squared error of the network output against the parameterization's target."""
+    """Mean squared error of the network output against the parameterization's target.
+    Randomness is drawn for the whole (global) batch, the loss on this rank's rows (distributed.Shard)."""
     x0, cond = batch
     t, eps, alpha, sigma, x_t = draw_noisy(x0, model.schedule, generator)
+    x0, cond, t, eps, alpha, sigma, x_t = current_shard().local(x0, cond, t, eps, alpha, sigma, x_t)
     target = target_for(model.parameterization, x0, eps, alpha, sigma)
     return torch.mean((model(x_t, t, cond) - target) ** 2)
 
@@ -41,6 +42,7 @@ def oracle_fit_loss(oracle):
     def loss(model: NetDenoiser, target_model, batch, generator):
         x0, cond = batch
         t, _, alpha, sigma, x_t = draw_noisy(x0, model.schedule, generator)
+        x0, cond, t, alpha, sigma, x_t = current_shard().local(x0, cond, t, alpha, sigma, x_t)
         x0_star, eps_star = oracle.predict(x_t, t)
         target = target_for(model.parameterization, x0_star, eps_star, alpha, sigma)
         return torch.mean((model(x_t, t, cond) - target) ** 2)
@@ -49,12 +51,6 @@ def oracle_fit_loss(oracle):
 
 class TeacherError(ValueError):
     """A user-supplied teacher that cannot be used; str() is one line naming the key or file."""
-
-
-@dataclass
-class ImportedNet:
-    net: nn.Module
-    arch: dict
 
 
 def import_teacher_net(factory: str, factory_kwargs: dict, weights: str, data_shape, num_classes: int) -> nn.Module:
