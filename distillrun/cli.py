@@ -109,11 +109,12 @@ def run_job(cfg) -> int:
     """The Hydra task: validate, open tracking, run the pipeline, print the stage table."""
     from omegaconf import OmegaConf
 
-    from . import pipeline, recorder, report, tracking
+    from . import distributed, pipeline, recorder, report, tracking
     from .teachers import TeacherTrainingFailed
 
     try:
         validate(cfg)
+        join_ranks(cfg)
         if cfg.run_dir is None:
             from hydra.core.hydra_config import HydraConfig
             OmegaConf.set_struct(cfg, False)
@@ -134,6 +135,10 @@ def run_job(cfg) -> int:
             raise
         fail(f"out of memory ({' '.join(str(e).split())[:120]}); lower eval.samples, teacher.batch_size, "
              "method.batch_size or the network sizes (net.*), then rerun with fresh=true or another run_dir")
+    finally:
+        distributed.teardown()
+    if summary is None:  # a rank other than 0 under torchrun: rank 0 reports
+        return 0
     print(report.stage_table(summary))
     print(f"run folder: {cfg.run_dir}")
     if cfg.tracking.enabled:
@@ -141,6 +146,32 @@ def run_job(cfg) -> int:
     if summary["failed"]:
         fail(failed_stage_line(cfg, summary), EXIT_STAGE_FAILED)
     return 0
+
+
+def join_ranks(cfg) -> None:
+    """Under torchrun: check what every rank must share, join the process group, and leave MLflow, the
+    run folder and the progress bars to rank 0."""
+    from omegaconf import OmegaConf
+
+    from . import distributed
+    from .teachers import resolve_device
+
+    distributed.adopt_cluster_env()
+    world = distributed.world_size()
+    if world <= 1:
+        return
+    if cfg.run_dir is None:
+        raise ConfigError("run_dir", None, f"set run_dir=... when launching {world} ranks with torchrun, "
+                          "so that all of them share one run folder")
+    for key in ("teacher.batch_size", "method.batch_size"):
+        size = OmegaConf.select(cfg, key)
+        if size % world:
+            raise ConfigError(key, size, f"must be divisible by the {world} ranks (each takes an equal share)")
+    distributed.setup(resolve_device(cfg.compute.device))
+    if not distributed.is_main():
+        OmegaConf.set_struct(cfg, False)
+        cfg.tracking.enabled, cfg.quiet = False, True
+        OmegaConf.set_struct(cfg, True)
 
 
 def failed_stage_line(cfg, summary: dict) -> str:

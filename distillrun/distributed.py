@@ -39,6 +39,16 @@ class Shard:
         return tuple(None if t is None else t[rows] for t in tensors)
 
 
+def adopt_cluster_env() -> None:
+    """Inside a multi-task SLURM job started by the submitit launcher (no torchrun variables), export the
+    RANK/WORLD_SIZE/MASTER_ADDR/... that torch.distributed's env:// setup reads, via submitit's own helper."""
+    if "RANK" in os.environ or "SUBMITIT_EXECUTOR" not in os.environ or int(os.environ.get("SLURM_NTASKS", "1")) <= 1:
+        return
+    from submitit.helpers import TorchDistributedEnvironment
+
+    TorchDistributedEnvironment().export(set_cuda_visible_devices=False)
+
+
 def world_size() -> int:
     return int(os.environ.get("WORLD_SIZE", "1"))
 
@@ -79,6 +89,15 @@ def local_device(device: torch.device) -> torch.device:
 def barrier() -> None:
     if active():
         dist.barrier()
+
+
+def share_flag(value: bool | None) -> bool:
+    """Rank 0's `value`, on every rank (others pass None): e.g. whether to run the next stage."""
+    if not active():
+        return bool(value)
+    box = [value]
+    dist.broadcast_object_list(box, src=0)
+    return bool(box[0])
 
 
 def teardown() -> None:

@@ -22,7 +22,7 @@ from pathlib import Path
 import torch
 from omegaconf import DictConfig
 
-from . import checkpoint, evaluate, report, runfolder, stopping, training
+from . import checkpoint, distributed, evaluate, report, runfolder, stopping, training
 from .data import load_dataset
 from .stages import StageSpec, method_for, teacher_sampler
 from .teachers import Teacher, import_teacher, prepare_teacher
@@ -175,12 +175,42 @@ def run(cfg: DictConfig, recorder, recipe: str | None = None, data=None) -> dict
     torch.manual_seed(cfg.seed)
     data = data if data is not None else preflight(cfg)
     stages = plan_stages(cfg)
+    if not distributed.is_main():
+        with training.loop_defaults(cfg.checkpoint_every, cfg.compute.precision):
+            return _follow(cfg, data, stages, Path(cfg.run_dir))
     run_dir = open_run_dir(cfg)  # locked for this process until the end of the run
+    distributed.barrier()  # the other ranks wait until the folder is ready (fresh=true may have emptied it)
     try:
-        with training.checkpoint_interval(cfg.checkpoint_every):
+        with training.loop_defaults(cfg.checkpoint_every, cfg.compute.precision):
             return _run(cfg, recorder, recipe, data, stages, run_dir)
     finally:
         runfolder.unlock(run_dir)
+
+
+def _follow(cfg: DictConfig, data, stages: list[StageSpec], run_dir: Path) -> None:
+    """Ranks other than 0 under torchrun: train every stage in lockstep with rank 0 (DDP), write and
+    evaluate nothing, and stop when rank 0's stop rule says so."""
+    distributed.barrier()
+    teacher = prepare_teacher(cfg, data, run_dir)
+    method = method_for(cfg.method.name)
+    previous, stage_teacher = teacher.init_student, teacher.denoiser
+    for spec in stages:
+        stage_dir = run_dir / f"stage-{spec.index:02d}"
+        student = method.make_student(cfg, previous, data)
+        done = stage_dir / "metrics.json"
+        if done.exists() and finished_record(done, spec)["failed"] is None:
+            runfolder.load_model_into(student, stage_dir)
+        else:
+            g = torch.Generator().manual_seed(cfg.seed * 1000 + spec.index)
+            student = method.train(cfg, spec, stage_teacher, student, data, g, stage_dir / "partial.safetensors",
+                                   True, teacher.device).model
+        student.requires_grad_(False)
+        if not distributed.share_flag(None):
+            break
+        previous = student
+        if cfg.method.name == "progressive":
+            stage_teacher = student
+    return None
 
 
 def _run(cfg: DictConfig, recorder, recipe, data, stages: list[StageSpec], run_dir: Path) -> dict:
@@ -202,7 +232,7 @@ def _run(cfg: DictConfig, recorder, recipe, data, stages: list[StageSpec], run_d
         record = attach_verdict(cfg, record, reference)
         records.append(record)
         recorder.stage(record, run_dir / f"stage-{spec.index:02d}")
-        if record["verdict"] != stopping.WITHIN:
+        if not distributed.share_flag(record["verdict"] == stopping.WITHIN):  # tells the other ranks too
             break
         previous, previous_samples = student, x
         if cfg.method.name == "progressive":

@@ -11,7 +11,7 @@ from dataclasses import dataclass
 import torch
 from omegaconf import OmegaConf
 
-from . import checkpoint, runfolder
+from . import checkpoint, distributed, runfolder
 from .denoiser import NetDenoiser
 from .methods.teacher import TeacherError, _check_forward, denoising_loss, network_for, oracle_fit_loss
 from .nets import build_net
@@ -64,12 +64,15 @@ def prepare_teacher(cfg, data, run_dir) -> Teacher:
         return Teacher(den, den, arch, device, [], 0.0, data.sigma_data)
     net, arch = network_for(cfg, data)
     den = NetDenoiser(net, cfg.teacher.parameterization, schedule).to(device)
+    if cfg.compute.compile:
+        net.compile()  # in place: torch.compile of forward, same state_dict keys; students inherit it by copy
     oracle = OracleDenoiser(data.mixture, schedule) if cfg.teacher.source == "oracle" else None
     losses, seconds = [], 0.0
     if (folder / "model.json").exists():
         meta = runfolder.load_model_into(den, folder)
         losses, seconds = meta.get("losses", []), meta.get("seconds", 0.0)
-        (folder / "partial.safetensors").unlink(missing_ok=True)  # a kill came between model.json and this
+        if distributed.is_main():  # a kill came between model.json and this
+            (folder / "partial.safetensors").unlink(missing_ok=True)
     else:
         folder.mkdir(parents=True, exist_ok=True)
         t = cfg.teacher
@@ -89,8 +92,9 @@ def prepare_teacher(cfg, data, run_dir) -> Teacher:
         meta = {"net": arch, "parameterization": t.parameterization, "schedule": t.schedule, "method": "teacher",
                 "stage": 0, "steps": t.steps, "source": t.source, "losses": losses, "seconds": seconds,
                 "its_per_s": result.its_per_s}
-        checkpoint.save_model(folder, den.state_dict(), meta)
-        (folder / "partial.safetensors").unlink(missing_ok=True)
+        if distributed.is_main():  # under torchrun every rank trained the same weights; rank 0 writes them
+            checkpoint.save_model(folder, den.state_dict(), meta)
+            (folder / "partial.safetensors").unlink(missing_ok=True)
     den.requires_grad_(False)
     return Teacher(oracle if oracle is not None else den, den, arch, device, losses, seconds, data.sigma_data)
 

@@ -20,24 +20,34 @@ from torch.optim.lr_scheduler import ConstantLR, CosineAnnealingLR, LinearLR, Se
 from torch.optim.swa_utils import AveragedModel
 from tqdm.auto import tqdm
 
-from . import checkpoint
+from . import checkpoint, distributed
 
 # A clipped step is still taken when the gradient norm is large; only a norm this far beyond any
 # sane value ends the run as diverged (common practice: clip at ~1, treat 1e4x that as divergence).
 EXPLODED_GRAD_NORM = 1e4
 # Iterations between mid-run states for loops whose LoopSpec leaves save_every unset: the run's
-# checkpoint_every, set by the pipeline for its duration (see checkpoint_interval).
+# checkpoint_every and precision, set by the pipeline for its duration (see loop_defaults).
 _CHECKPOINT_EVERY: ContextVar[int] = ContextVar("checkpoint_every", default=500)
+_PRECISION: ContextVar[str] = ContextVar("precision", default="fp32")
 
 
 @contextlib.contextmanager
-def checkpoint_interval(every: int):
-    """Within this block, loops without an explicit LoopSpec.save_every save their state every `every` iterations."""
-    token = _CHECKPOINT_EVERY.set(int(every))
+def loop_defaults(checkpoint_every: int, precision: str = "fp32"):
+    """Within this block, loops save their state every `checkpoint_every` iterations (unless their LoopSpec
+    says otherwise) and run forward passes under bf16 autocast when precision='bf16' on a CUDA device."""
+    tokens = _CHECKPOINT_EVERY.set(int(checkpoint_every)), _PRECISION.set(precision)
     try:
         yield
     finally:
-        _CHECKPOINT_EVERY.reset(token)
+        _CHECKPOINT_EVERY.reset(tokens[0])
+        _PRECISION.reset(tokens[1])
+
+
+def autocast_for(model: nn.Module):
+    """bf16 autocast for the forward pass and loss on CUDA when asked for (compute.precision); else a no-op."""
+    device = next(model.parameters()).device
+    enabled = _PRECISION.get() == "bf16" and device.type == "cuda"
+    return torch.autocast(device_type=device.type, dtype=torch.bfloat16, enabled=enabled)
 
 
 @dataclass
@@ -48,7 +58,7 @@ class LoopSpec:
     decay: str = "linear"  # linear | cosine | none: LR after warm-up, ending at 0 (none: constant)
     grad_clip: float = 1.0
     ema_decay: float = 0.0  # 0: no EMA copy, the target network is the model itself
-    save_every: int | None = None  # iterations between mid-run states (resume points); None: checkpoint_interval
+    save_every: int | None = None  # iterations between mid-run states (resume points); None: loop_defaults
 
 
 @dataclass
@@ -155,6 +165,7 @@ def train_loop(model: nn.Module, loss_fn: Callable, draw_batch: Callable, spec: 
     opt = torch.optim.Adam([p for p in model.parameters() if p.requires_grad], lr=spec.lr)
     sched = make_scheduler(opt, spec)
     ema = make_ema(model, spec.ema_decay)
+    trained = distributed.replicate(model)  # DDP under torchrun (gradients averaged over ranks), else model
     start, losses = 0, []
     if state_path is not None and Path(state_path).exists():
         start, losses = _restore(state_path, model, ema, opt, sched, generator)
@@ -163,7 +174,8 @@ def train_loop(model: nn.Module, loss_fn: Callable, draw_batch: Callable, spec: 
     bar = tqdm(range(start, spec.iterations), desc=desc, initial=start, total=spec.iterations,
                disable=True if quiet else None, leave=False, dynamic_ncols=True)  # None: off when not a TTY
     for it in bar:
-        loss = loss_fn(model, kept_model(ema), draw_batch(generator), generator)
+        with autocast_for(model):
+            loss = loss_fn(trained, kept_model(ema), draw_batch(generator), generator)
         opt.zero_grad(set_to_none=True)
         loss.backward()
         grad_norm = torch.nn.utils.clip_grad_norm_(model.parameters(), spec.grad_clip if spec.grad_clip > 0 else math.inf)
@@ -177,7 +189,7 @@ def train_loop(model: nn.Module, loss_fn: Callable, draw_batch: Callable, spec: 
         losses.append(loss.item())
         if it % 50 == 0:
             bar.set_postfix(loss=f"{losses[-1]:.4g}")
-        if state_path is not None and (it + 1) % save_every == 0 and it + 1 < spec.iterations:
+        if state_path is not None and (it + 1) % save_every == 0 and it + 1 < spec.iterations and distributed.is_main():
             checkpoint.save_state(state_path, *_state_tensors(model, ema, opt, sched, generator, losses, it + 1))
         if kill_label:
             checkpoint.kill_point(f"{kill_label}:iteration={it + 1}")
