@@ -25,7 +25,7 @@ def fail(message: str, code: int = EXIT_BAD_INPUT):
 def user_errors() -> tuple[type[Exception], ...]:
     """Exceptions that describe a problem with the user's config, files or services (one line, exit 2)."""
     from .checkpoint import CheckpointError
-    from .methods.teacher import TeacherError
+    from .teachers import TeacherError
     from .pipeline import DataError, RunFolderError
     from .tracking import TrackingError
 

@@ -168,8 +168,8 @@ def _positive(cfg: DictConfig, keys: list[str]) -> None:
         value = cfg
         for part in key.split("."):
             value = value[part]
-        if not value > 0:
-            raise ConfigError(key, value, "must be > 0")
+        if not (value > 0 and math.isfinite(value)):
+            raise ConfigError(key, value, "must be a finite number > 0")
 
 
 def _power_of_two(n: int) -> bool:
@@ -204,6 +204,9 @@ def validate(cfg: DictConfig) -> None:
             raise ConfigError("teacher.factory", cfg.teacher.factory, "must look like 'package.module:function'")
         if not os.path.isfile(cfg.teacher.weights):
             raise ConfigError("teacher.weights", cfg.teacher.weights, "no such file (a .safetensors state dict)")
+    _positive(cfg, ["net.width", "net.depth", "net.base"])
+    if not cfg.net.mults or any(m < 1 for m in cfg.net.mults):
+        raise ConfigError("net.mults", list(cfg.net.mults), "must be a non-empty list of multipliers >= 1, e.g. [1, 2]")
     _positive(cfg, ["data.n_train", "teacher.steps", "teacher.iterations", "teacher.batch_size", "teacher.lr",
                     "eval.samples", "eval.projections", "eval.bootstrap", "compute.threads",
                     "method.iterations", "method.batch_size", "method.lr", "checkpoint_every"])
@@ -224,8 +227,8 @@ def validate(cfg: DictConfig) -> None:
                           "negative; use stop=absolute (stop.mode=absolute)")
     if not (cfg.stop.tolerance > 0 and math.isfinite(cfg.stop.tolerance)):
         raise ConfigError("stop.tolerance", cfg.stop.tolerance, "must be a finite number > 0")
-    if cfg.stop.z < 0:
-        raise ConfigError("stop.z", cfg.stop.z, "must be >= 0")
+    if not (math.isfinite(cfg.stop.z) and cfg.stop.z >= 0):
+        raise ConfigError("stop.z", cfg.stop.z, "must be a finite number >= 0")
     _one_of("compute.device", cfg.compute.device, ("cpu", "cuda", "auto"))
     _one_of("compute.precision", cfg.compute.precision, ("fp32", "bf16"))
     if cfg.compute.device == "cuda":
@@ -254,7 +257,7 @@ def _validate_method(cfg: DictConfig) -> None:
         raise ConfigError("method.steps", steps, f"each must be below method.grid_points={m.grid_points}")
     if not 0 < m.sigma_min < m.sigma_max:
         raise ConfigError("method.sigma_min", m.sigma_min, f"must satisfy 0 < sigma_min < sigma_max={m.sigma_max}")
-    if m.rho <= 0:
+    if not (math.isfinite(m.rho) and m.rho > 0):
         raise ConfigError("method.rho", m.rho, "must be > 0")
     if m.grid_points < 2:
         raise ConfigError("method.grid_points", m.grid_points, "must be >= 2")
@@ -263,7 +266,7 @@ def _validate_method(cfg: DictConfig) -> None:
     _one_of("method.weighting", m.weighting, ("uniform", "inverse_gap"))
     if not 0 <= m.ema_decay < 1:
         raise ConfigError("method.ema_decay", m.ema_decay, "must be in [0, 1)")
-    if m.huber_c is not None and m.huber_c <= 0:
+    if m.huber_c is not None and not (math.isfinite(m.huber_c) and m.huber_c > 0):
         raise ConfigError("method.huber_c", m.huber_c, "must be > 0 or null")
     if m.sigma_data is not None and m.sigma_data <= 0:
         raise ConfigError("method.sigma_data", m.sigma_data, "must be > 0 or null")

@@ -283,7 +283,7 @@ def run_stage(cfg, spec, method, stage_teacher, previous, data, bench, teacher, 
     checkpoint.save_model(stage_dir, student.state_dict(), teacher.student_meta(cfg, spec))
     checkpoint.kill_point(f"{stage_dir.name}:weights")
     checkpoint.atomic_write_json(stage_dir / "loss.json", {"loss": result.losses})
-    report.sample_picture(x, bench, stage_dir / "samples.png", f"{cfg.method.name} stage {spec.index}: {spec.steps} steps")
+    report.sample_picture(x, bench, stage_dir / "samples.png", f"{cfg.method.name} stage {spec.index}: {report.n_steps(spec.steps)}")
     checkpoint.atomic_write_json(done, record)
     (stage_dir / "partial.safetensors").unlink(missing_ok=True)
     return record, student, x
@@ -295,9 +295,9 @@ def summarize(cfg, stages, records, reference, run_dir: Path) -> dict:
     if last and last["verdict"] == stopping.FAILED:
         why = f"stage {last['index']} failed: {last['rule']}"
     elif last and last["verdict"] == stopping.OVER:
-        why = f"stage {last['index']} ({last['steps']} steps) left the tolerance: {last['rule']}"
+        why = f"stage {last['index']} ({report.n_steps(last['steps'])}) left the tolerance: {last['rule']}"
     else:
-        why = f"reached the target of {stages[-1].steps} steps" if stages else "nothing to do"
+        why = f"reached the target of {report.n_steps(stages[-1].steps)}" if stages else "nothing to do"
     summary = {"method": cfg.method.name, "stop_metric": cfg.stop.metric, "tolerance": cfg.stop.tolerance,
                "mode": cfg.stop.mode, "reference": reference, "stages": records, "stopped_because": why,
                "chosen": None if chosen is None else {"index": chosen["index"], "steps": chosen["steps"],

@@ -112,7 +112,8 @@ class Recorder:
                   "teacher_steps": record["teacher_steps"], "iterations": record["iterations"]}
         resume = entry.get("run") or self.tracker.stage_runs().get(name)
         run_id = self.tracker.start_stage(name, params, resume_run_id=resume,
-                                          tags={"distillrun.verdict": record["verdict"], "distillrun.rule": record["rule"]})
+                                          tags={"distillrun.verdict": record["verdict"], "distillrun.rule": record["rule"]},
+                                          seconds_ago=record["seconds"]["train"] + record["seconds"]["eval"])
         checkpoint.kill_point(f"tracking:stage-{record['index']:02d}")
         self.ids["stages"][key] = {"run": run_id, "done": False, "attempt": attempt}
         self._save_ids()  # a kill from here on reopens this run instead of creating a second one

@@ -22,12 +22,15 @@ def _save(fig, path: Path) -> None:
     tmp.replace(path)
 
 
-def image_grid(x: torch.Tensor, rows: int = 8, cols: int = 8) -> torch.Tensor:
-    """(N, C, H, W) in [-1, 1] -> one (rows*H, cols*W) picture in [0, 1] (first channel or RGB)."""
+def image_grid(x: torch.Tensor, rows: int = 8, cols: int = 8, gap: int = 1) -> torch.Tensor:
+    """(N, C, H, W) in [-1, 1] -> one (rows*(H+gap), cols*(W+gap)) picture in [0, 1] (first channel or RGB);
+    a mid-grey `gap` of pixels right of and below each image keeps dark-background images apart."""
     x = x[: rows * cols].clamp(-1, 1).add(1).div(2)
     n, c, h, w = x.shape
-    pad = torch.ones(rows * cols - n, c, h, w)
-    x = torch.cat([x, pad]).reshape(rows, cols, c, h, w).permute(0, 3, 1, 4, 2).reshape(rows * h, cols * w, c)
+    x = torch.cat([x, torch.ones(rows * cols - n, c, h, w)])
+    x = torch.nn.functional.pad(x, (0, gap, 0, gap), value=0.5)
+    h, w = h + gap, w + gap
+    x = x.reshape(rows, cols, c, h, w).permute(0, 3, 1, 4, 2).reshape(rows * h, cols * w, c)
     return x[..., 0] if c == 1 else x
 
 
@@ -98,9 +101,14 @@ def stage_table(summary: dict) -> str:
     chosen = summary["chosen"]
     lines.append(f"floor ({metric}, data vs data): {ref['floor'][metric]:.4g}")
     lines.append(f"stopped: {summary['stopped_because']}")
-    lines.append("chosen student: " + (f"stage {chosen['index']} at {chosen['steps']} steps ({chosen['folder']})"
+    lines.append("chosen student: " + (f"stage {chosen['index']} at {n_steps(chosen['steps'])} ({chosen['folder']})"
                                        if chosen else "none within tolerance"))
     return "\n".join(lines)
+
+
+def n_steps(n: int) -> str:
+    """'1 step', '4 steps'."""
+    return f"{n} step" if n == 1 else f"{n} steps"
 
 
 def _pm(m: dict, metric: str, prefix: str = "") -> str:
@@ -110,3 +118,89 @@ def _pm(m: dict, metric: str, prefix: str = "") -> str:
 
 def load_summary(run_dir: Path) -> dict:
     return checkpoint.read_json(Path(run_dir) / "summary.json", {"stages": list, "reference": dict})
+
+
+def divergence_vs_steps(runs: list[tuple[str, dict]], path: Path) -> None:
+    """Same-noise divergence from the original teacher per stage: RMS (solid) and median (dashed), log axes."""
+    fig, ax = plt.subplots(figsize=(6, 4))
+    for i, (label, s) in enumerate(runs):
+        rows = [r for r in s["stages"] if r["metrics"]]
+        steps = [r["steps"] for r in rows]
+        color = f"C{i % 10}"
+        for key, style in (("rms", "-"), ("median", "--")):
+            ax.plot(steps, [r["metrics"].get(f"divergence/teacher_{key}", math.nan) for r in rows], style,
+                    marker="o", color=color, label=f"{label} · {s['method']}: {key}")
+    ax.set_xscale("log", base=2)
+    ax.set_yscale("log")
+    ax.set_xlabel("sampler steps (NFE)")
+    ax.set_ylabel("distance to the teacher's sample (same noise)")
+    ax.set_title("divergence from the teacher at full steps", fontsize=9)
+    ax.legend(fontsize=7)
+    ax.grid(alpha=0.3, which="both")
+    _save(fig, path)
+
+
+def samples_side_by_side(runs: list[tuple[str, Path]], summaries: list[dict], path: Path, cols: int = 4) -> None:
+    """The stages' samples.png pictures in one figure: each run starts a new row, `cols` stages per row."""
+    import matplotlib.image as mpimg
+
+    cols = max(1, min(cols, max(len(s["stages"]) for s in summaries)))
+    cells = []  # (run label, stage record, picture path), one row block per run
+    for (label, run_dir), s in zip(runs, summaries):
+        block = [(label, r, Path(run_dir) / f"stage-{r['index']:02d}" / "samples.png") for r in s["stages"]]
+        cells += block + [None] * (-len(block) % cols)
+    rows = max(1, math.ceil(len(cells) / cols))
+    fig, axes = plt.subplots(rows, cols, figsize=(3.2 * cols, 3.4 * rows), squeeze=False)
+    for ax, cell in zip(axes.flat, cells + [None] * (rows * cols - len(cells))):
+        ax.axis("off")
+        if cell is None:
+            continue
+        label, r, picture = cell
+        if picture.exists():
+            ax.imshow(mpimg.imread(picture))
+        else:
+            ax.text(0.5, 0.5, f"stage {r['index']}: {r['verdict']}\n(no samples)", ha="center", va="center")
+        if len(runs) > 1:
+            ax.set_title(label, fontsize=8)
+    fig.tight_layout()
+    _save(fig, path)
+
+
+# ------------------------------------------------------------------------ the table of `distillrun compare`
+def _num(v, fmt=".4g") -> str:
+    return "" if v is None or (isinstance(v, float) and math.isnan(v)) else format(v, fmt)
+
+
+def compare_rows(label: str, s: dict, metric: str) -> list[list[str]]:
+    ref = s["reference"]
+    pm = lambda m, p: f"{_num(m.get(p + metric))} ± {_num(m.get(p + metric + '_se'), '.2g')}"  # noqa: E731
+    rows = [[label, s["method"], "teacher", str(ref.get("steps", "")), pm(ref["teacher"], ""), "", "", "", "", ""]]
+    for r in s["stages"]:
+        m = r["metrics"]
+        rows.append([label, r["method"], str(r["index"]), str(r["steps"]), pm(m, "quality/") if m else "",
+                     _num(m.get(f"baseline/{metric}")), _num(m.get("divergence/teacher_rms")),
+                     _num(m.get("divergence/teacher_median")), r["verdict"],
+                     f"{r['seconds']['train'] + r['seconds']['eval']:.1f}"])
+    return rows
+
+
+def format_table(head: list[str], rows: list[list[str]]) -> str:
+    widths = [max(len(x) for x in col) for col in zip(head, *rows)]
+    line = lambda cells: "  ".join(c.ljust(w) if i < 3 else c.rjust(w)  # noqa: E731
+                                   for i, (c, w) in enumerate(zip(cells, widths))).rstrip()
+    return "\n".join([line(head), "-" * len(line(head))] + [line(r) for r in rows])
+
+
+def comparison_table(runs: list[tuple[str, dict]], metric: str) -> str:
+    """`distillrun compare`'s table: per run a teacher row and one row per stage, then a note with the floor,
+    the chosen student and why the run stopped. Empty cells: not measured (a failed stage, no baseline)."""
+    head = ["run", "method", "stage", "steps", f"{metric} ± se", "DDIM baseline", "diverg. rms", "diverg. median",
+            "verdict", "seconds"]
+    table = format_table(head, [row for label, s in runs for row in compare_rows(label, s, metric)])
+    notes = []
+    for label, s in runs:
+        c = s["chosen"]
+        chosen = f"stage {c['index']} at {c['steps']} steps" if c else "none within tolerance"
+        notes.append(f"{label}: floor {metric} {_num(s['reference']['floor'].get(metric))}; chosen {chosen}; "
+                     f"stopped: {s['stopped_because']}")
+    return table + "\n" + "\n".join(notes)

@@ -9,11 +9,12 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import torch
+from torch import nn
 from omegaconf import OmegaConf
 
 from . import checkpoint, distributed, runfolder
 from .denoiser import NetDenoiser
-from .methods.teacher import TeacherError, _check_forward, denoising_loss, network_for, oracle_fit_loss
+from .methods.teacher import denoising_loss, network_for, oracle_fit_loss
 from .nets import build_net
 from .nets.oracle import OracleDenoiser
 from .schedule import Schedule
@@ -42,6 +43,24 @@ class Teacher:
             meta["consistency"] = OmegaConf.to_container(cfg.method, resolve=True)
             meta["consistency"]["sigma_data"] = cfg.method.sigma_data or self.sigma_data
         return meta
+
+
+class TeacherError(ValueError):
+    """A user-supplied teacher that cannot be used; str() is one line naming the key or file."""
+
+
+def _check_forward(net: nn.Module, data_shape, num_classes: int, factory: str) -> None:
+    x = torch.zeros((2, *data_shape))
+    cond = torch.zeros(2, dtype=torch.long) if num_classes else None
+    try:
+        with torch.no_grad():
+            out = net(x, torch.full((2,), 0.5), cond)
+    except Exception as e:
+        raise TeacherError(f"teacher.factory={factory!r}: forward pass net(x, t, cond) on a dummy batch of shape "
+                           f"{tuple(x.shape)} failed: {e}") from None
+    if not torch.is_tensor(out) or out.shape != x.shape:
+        shape = tuple(out.shape) if torch.is_tensor(out) else type(out).__name__
+        raise TeacherError(f"teacher.factory={factory!r}: output shape {shape} != input shape {tuple(x.shape)}")
 
 
 def resolve_device(name: str) -> torch.device:

@@ -244,9 +244,10 @@ class Tracker:
             raise TrackingError(f"tracking store {self.uri}: run {run_id} is not a stage of run {parent}")
         self._call(f"reopen run {run_id}", self.client.update_run, run_id, status="RUNNING")
 
-    def _create(self, name: str, tags: dict) -> str:
+    def _create(self, name: str, tags: dict, start_time: int | None = None) -> str:
         tags = {str(k): _truncate(str(v), TAG_VALUE_LIMIT) for k, v in tags.items()}  # set with the run, atomically
-        run = self._call("create run", self.client.create_run, self.experiment_id, run_name=name, tags=tags)
+        run = self._call("create run", self.client.create_run, self.experiment_id, run_name=name, tags=tags,
+                         start_time=start_time)
         return run.info.run_id
 
     def start_pipeline(self, name: str, params: Mapping | None = None, tags: Mapping | None = None,
@@ -261,8 +262,9 @@ class Tracker:
         return run_id
 
     def start_stage(self, name: str, params: Mapping | None = None, resume_run_id: str | None = None,
-                    tags: Mapping | None = None) -> str:
-        """Create a child run of the pipeline run, or reopen resume_run_id (which must be one)."""
+                    tags: Mapping | None = None, seconds_ago: float = 0.0) -> str:
+        """Create a child run of the pipeline run, or reopen resume_run_id (which must be one). A stage logged
+        after it ran passes its duration as seconds_ago, so the UI's Duration column shows the real one."""
         if self.pipeline_run_id is None:
             raise TrackingError("start_stage called before start_pipeline")
         if self.stage_run_id is not None:
@@ -270,7 +272,8 @@ class Tracker:
         if resume_run_id:
             self._reopen(resume_run_id, parent=self.pipeline_run_id)
         self.stage_run_id = resume_run_id or self._create(
-            name, {PARENT_TAG: self.pipeline_run_id, ROLE_TAG: "stage", **(tags or {})})
+            name, {PARENT_TAG: self.pipeline_run_id, ROLE_TAG: "stage", **(tags or {})},
+            start_time=int((time.time() - seconds_ago) * 1000))
         self.set_tags(tags or {})
         self.log_params(params or {})
         return self.stage_run_id

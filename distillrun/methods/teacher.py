@@ -5,7 +5,6 @@ x_t = alpha_t x0 + sigma_t eps, loss = ||net(x_t, t) - target||^2 with target = 
 """
 from __future__ import annotations
 
-import importlib
 import torch
 from torch import nn
 
@@ -47,54 +46,6 @@ def oracle_fit_loss(oracle):
         target = target_for(model.parameterization, x0_star, eps_star, alpha, sigma)
         return torch.mean((model(x_t, t, cond) - target) ** 2)
     return loss
-
-
-class TeacherError(ValueError):
-    """A user-supplied teacher that cannot be used; str() is one line naming the key or file."""
-
-
-def import_teacher_net(factory: str, factory_kwargs: dict, weights: str, data_shape, num_classes: int) -> nn.Module:
-    """Build the user's module from 'package.module:function', load safetensors weights (strict), and
-    check one forward pass on a dummy batch returns the data's shape."""
-    from safetensors import SafetensorsError
-    from safetensors.torch import load_file
-
-    module_name, _, fn_name = factory.partition(":")
-    try:
-        fn = getattr(importlib.import_module(module_name), fn_name)
-    except (ImportError, AttributeError) as e:
-        raise TeacherError(f"teacher.factory={factory!r}: cannot import ({e}); is its folder on PYTHONPATH?") from None
-    try:
-        net = fn(**dict(factory_kwargs))
-    except Exception as e:  # the user's code: report, don't trace
-        raise TeacherError(f"teacher.factory={factory!r}: calling it failed: {e}") from None
-    if not isinstance(net, nn.Module):
-        raise TeacherError(f"teacher.factory={factory!r}: returned {type(net).__name__}, expected a torch.nn.Module")
-    try:
-        state = load_file(weights)
-    except (SafetensorsError, OSError, ValueError) as e:
-        raise TeacherError(f"teacher.weights={weights!r}: not a readable safetensors file ({e})") from None
-    try:
-        net.load_state_dict(state, strict=True)
-    except RuntimeError as e:
-        first = str(e).splitlines()[1].strip() if len(str(e).splitlines()) > 1 else str(e)
-        raise TeacherError(f"teacher.weights={weights!r}: does not match the module from {factory}: {first}") from None
-    _check_forward(net, data_shape, num_classes, factory)
-    return net
-
-
-def _check_forward(net: nn.Module, data_shape, num_classes: int, factory: str) -> None:
-    x = torch.zeros((2, *data_shape))
-    cond = torch.zeros(2, dtype=torch.long) if num_classes else None
-    try:
-        with torch.no_grad():
-            out = net(x, torch.full((2,), 0.5), cond)
-    except Exception as e:
-        raise TeacherError(f"teacher.factory={factory!r}: forward pass net(x, t, cond) on a dummy batch of shape "
-                           f"{tuple(x.shape)} failed: {e}") from None
-    if not torch.is_tensor(out) or out.shape != x.shape:
-        shape = tuple(out.shape) if torch.is_tensor(out) else type(out).__name__
-        raise TeacherError(f"teacher.factory={factory!r}: output shape {shape} != input shape {tuple(x.shape)}")
 
 
 def network_for(cfg, data) -> tuple[nn.Module, dict]:
