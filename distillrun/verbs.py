@@ -1,0 +1,308 @@
+"""The verbs beside the run command. `main(verb, argv)` parses, runs, and turns bad input into one line, exit 2.
+
+  distillrun recipes [NAME]                                  every recipe: purpose, CPU time, command; NAME: its YAML
+  distillrun draw RUN_DIR [--stage N] [--count N] [--seed S] [--out PATH]
+  distillrun compare RUN_DIR [RUN_DIR ...] [--metric M] [--out DIR]
+
+`draw` with --seed S and --count N feeds a stage the evaluation noise bank of eval.seed=S, eval.samples=N,
+so with the defaults (the run's own eval.seed and eval.samples) it repeats the samples the stage was scored on.
+"""
+from __future__ import annotations
+
+import argparse
+import io
+import sys
+from pathlib import Path
+from types import SimpleNamespace
+
+EXIT_BAD_INPUT = 2
+RECIPE_DIR = Path(__file__).parent / "configs" / "recipe"
+HEADER_KEYS = ("Purpose", "Command", "CPU time")
+
+
+class InputError(ValueError):
+    """Bad arguments or an unusable run folder; str() is the one line shown to the user."""
+
+
+class _Parser(argparse.ArgumentParser):
+    def error(self, message):  # argparse prints usage + message over two lines; we want one
+        raise InputError(f"{message} (see distillrun {self.prog.split()[-1]} --help)")
+
+
+# ------------------------------------------------------------------------------------------------ recipes
+def recipe_header(path: Path) -> dict:
+    """Purpose (one paragraph), Command (a list of lines) and CPU time from a recipe's leading comment block;
+    an indented comment line continues the field above it."""
+    fields, key = {}, None
+    for line in path.read_text().splitlines():
+        if not line.startswith("#"):
+            break
+        text = line[1:].strip()
+        head, sep, rest = text.partition(":")
+        if sep and head in HEADER_KEYS:
+            key, fields[head] = head, [rest.strip()]
+        elif key and text and line[1:].startswith("  "):
+            fields[key].append(text)
+        else:
+            key = None
+    out = {k: " ".join(" ".join(v).split()) for k, v in fields.items()}
+    if "Command" in fields:
+        out["Command"] = [" ".join(c.split()) for c in fields["Command"]]
+    return out
+
+
+def recipe_names() -> list[str]:
+    return sorted(p.stem for p in RECIPE_DIR.glob("*.yaml"))
+
+
+def first_sentence(text: str) -> str:
+    head, sep, _ = text.partition(". ")
+    return head + "." if sep else text
+
+
+def cmd_recipes(args) -> int:
+    names = recipe_names()
+    if args.name is not None:
+        if args.name not in names:
+            raise InputError(f"recipe '{args.name}' not found; valid: {', '.join(names)}")
+        path = RECIPE_DIR / f"{args.name}.yaml"
+        print(f"# {path}\n{path.read_text()}", end="")
+        return 0
+    print(f"{len(names)} recipes. Run one: distillrun recipe=NAME   Its YAML and details: distillrun recipes NAME\n")
+    for name in names:
+        h = recipe_header(RECIPE_DIR / f"{name}.yaml")
+        print(f"{name}: {first_sentence(h.get('Purpose', '(no purpose stated)'))}")
+        print(f"    CPU time: {h.get('CPU time', 'not stated')}")
+        lines, prefix = h.get("Command", [f"distillrun recipe={name}"]), "$ "
+        for line in lines:
+            print(f"    {prefix}{line}")
+            prefix = "    " if line.endswith("\\") else "$ "
+        print()
+    return 0
+
+
+# ------------------------------------------------------------------------------------------- run folders
+def open_run(run_dir: Path) -> tuple[object, dict | None]:
+    """(resolved config, summary or None) of a run folder."""
+    from omegaconf import OmegaConf
+
+    from . import report
+
+    if not run_dir.is_dir():
+        raise InputError(f"RUN_DIR {run_dir}: no such folder (give the run_dir of a distillrun run)")
+    if not (run_dir / "config.yaml").is_file():
+        raise InputError(f"RUN_DIR {run_dir}: not a run folder (no config.yaml)")
+    try:
+        cfg = OmegaConf.load(run_dir / "config.yaml")
+    except Exception:
+        raise InputError(f"{run_dir / 'config.yaml'}: not a readable YAML config") from None
+    return cfg, report.load_summary(run_dir) if (run_dir / "summary.json").exists() else None
+
+
+def finished_stages(run_dir: Path) -> list[int]:
+    from . import checkpoint
+
+    out = []
+    for folder in sorted(run_dir.glob("stage-[0-9][0-9]")):
+        if (folder / "metrics.json").exists() and checkpoint.read_json(folder / "metrics.json").get("failed") is None:
+            out.append(int(folder.name[6:]))
+    return out
+
+
+def pick_stage(run_dir: Path, summary: dict | None, stage: int | None) -> Path:
+    """The chosen student's folder, or stage N's; refuses missing, unfinished and failed stages."""
+    valid = finished_stages(run_dir)
+    hint = f"finished stages: {', '.join(map(str, valid)) or 'none'}"
+    if stage is None:
+        if summary is None:
+            raise InputError(f"RUN_DIR {run_dir}: no summary.json yet (unfinished run); pass --stage N ({hint})")
+        if not summary.get("chosen"):
+            raise InputError(f"RUN_DIR {run_dir}: no chosen student (no stage within tolerance); pass --stage N ({hint})")
+        stage = summary["chosen"]["index"]
+    if stage not in valid:
+        from . import checkpoint
+
+        metrics = run_dir / f"stage-{stage:02d}" / "metrics.json"
+        why = f"failed ({checkpoint.read_json(metrics)['failed']})" if metrics.exists() else "does not exist or is unfinished"
+        raise InputError(f"--stage {stage}: that stage {why}; {hint}")
+    return run_dir / f"stage-{stage:02d}"
+
+
+def rebuild_student(folder: Path, data_fn) -> tuple[object, dict]:
+    """The stage's student as the pipeline sampled it: a NetDenoiser (progressive) or a ConsistencyModel."""
+    from . import checkpoint, teachers
+    from .denoiser import NetDenoiser
+    from .schedule import Schedule
+
+    state, meta = checkpoint.load_model_files(folder)
+    try:
+        net = teachers.rebuild_network(meta["net"])
+    except (ImportError, AttributeError) as e:
+        raise InputError(f"{folder / 'model.json'}: cannot rebuild the network ({e}); is the factory's folder "
+                         "on PYTHONPATH?") from None
+    c = meta.get("consistency") or {}
+    if meta["method"] == "consistency":  # sigma_data: as saved, else what the pipeline used (the data's std)
+        sigma_data = meta.get("sigma_data") or c.get("sigma_data") or data_fn().sigma_data
+    try:
+        sch = meta["schedule"]
+        model = NetDenoiser(net, meta["parameterization"], Schedule(**sch) if isinstance(sch, dict) else Schedule(sch))
+        if meta["method"] == "consistency":
+            from .methods.consistency import ConsistencyModel
+
+            model = ConsistencyModel(model, sigma_data, c["sigma_min"])
+        model.load_state_dict(state)
+    except (KeyError, TypeError, ValueError, RuntimeError) as e:
+        first = str(e).strip().splitlines()[0] if str(e).strip() else type(e).__name__
+        raise InputError(f"{folder / 'model.json'}: does not describe the saved weights ({first})") from None
+    return model.requires_grad_(False).eval(), meta
+
+
+# --------------------------------------------------------------------------------------------------- draw
+def draw_samples(model, meta: dict, cfg, count: int, seed: int, data_fn):
+    """The stage's sampler on the noise bank of eval.seed=seed, eval.samples=count (evaluate.make_bench's draw
+    order: noise first, then class labels picked from the data's labels)."""
+    import torch
+    from omegaconf import OmegaConf
+
+    from . import evaluate, stages
+
+    g = torch.Generator().manual_seed(seed)
+    noise = torch.randn((count, *meta["net"]["data_shape"]), generator=g)
+    cond = None
+    if meta["net"]["num_classes"]:
+        labels = data_fn().labels
+        cond = labels[torch.randint(0, len(labels), (count,), generator=g)]
+    run_cfg = OmegaConf.merge(cfg, {"eval": {"seed": seed}})
+    if meta["method"] == "consistency":
+        run_cfg.method.sigma_data = model.sigma_data  # resolved: the config may say null (= the data's std)
+    torch.set_num_threads(cfg.compute.threads)
+    sampler = stages.method_for(meta["method"]).sampler(run_cfg, model, meta["steps"])
+    return evaluate.draw(sampler, SimpleNamespace(noise=noise, cond=cond))
+
+
+def draw_target(args, run_dir: Path, index: int, seed: int, count: int) -> Path:
+    name = f"stage-{index:02d}_seed-{seed}_n-{count}.npy"
+    out = args.out if args.out is not None else run_dir / "drawn" / name
+    if out.is_dir():
+        return out / name
+    if out.suffix != ".npy":
+        raise InputError(f"--out {out}: give a file name ending in .npy, or an existing folder")
+    return out
+
+
+def cmd_draw(args) -> int:
+    import numpy as np
+    import torch
+
+    from . import checkpoint, pipeline, report
+
+    cfg, summary = open_run(args.run_dir)
+    folder = pick_stage(args.run_dir, summary, args.stage)
+    count = args.count if args.count is not None else cfg.eval.samples
+    seed = args.seed if args.seed is not None else cfg.eval.seed
+    if count < 1:
+        raise InputError(f"--count {count}: must be >= 1")
+    data = {}
+    data_fn = lambda: data.setdefault("d", pipeline.load_data(cfg))  # noqa: E731  (loaded only when needed)
+    model, meta = rebuild_student(folder, data_fn)
+    out = draw_target(args, args.run_dir, meta["stage"], seed, count)
+    x = draw_samples(model, meta, cfg, count, seed, data_fn)
+    backdrop = torch.empty(0, *x.shape[1:])  # the data behind a 2D scatter, when it can still be loaded
+    if x.dim() == 2:
+        try:
+            backdrop = data_fn().reference(report.SCATTER_POINTS, cfg.eval.seed + 1)
+        except pipeline.DataError:
+            pass
+    buf = io.BytesIO()
+    np.save(buf, x.numpy())
+    checkpoint.atomic_write_bytes(out, buf.getvalue())
+    picture = out.with_suffix(".png")
+    steps = report.n_steps(meta["steps"])
+    report.sample_picture(x, SimpleNamespace(reference=backdrop), picture,
+                          f"{meta['method']} stage {meta['stage']}: {steps}, seed {seed}")
+    print(f"drew {count} samples from stage {meta['stage']} ({meta['method']}, {steps}) of {args.run_dir}")
+    print(f"  samples: {out}  shape {tuple(x.shape)}\n  picture: {picture}")
+    return 0
+
+
+# ------------------------------------------------------------------------------------------------ compare
+def run_labels(run_dirs: list[Path]) -> list[str]:
+    """Folder names, with the parent's name where two runs share one (sweep jobs 0, 1, ...)."""
+    names = [d.resolve().name for d in run_dirs]
+    return [f"{d.resolve().parent.name}/{n}" if names.count(n) > 1 else n for d, n in zip(run_dirs, names)]
+
+
+def available_metrics(summary: dict) -> list[str]:
+    return [k for k in summary["reference"]["teacher"] if not k.endswith("_se")]
+
+
+def cmd_compare(args) -> int:
+    from . import report
+
+    summaries = []
+    for d in args.run_dirs:
+        _, s = open_run(d)
+        if s is None:
+            raise InputError(f"RUN_DIR {d}: no summary.json (unfinished run; rerun its command to resume it)")
+        summaries.append(s)
+    runs = list(zip(run_labels(args.run_dirs), summaries))
+    metric = args.metric or summaries[0]["stop_metric"]
+    for (label, s), d in zip(runs, args.run_dirs):
+        if metric not in available_metrics(s):
+            raise InputError(f"--metric {metric}: not measured in {d}; valid: {', '.join(available_metrics(s))}")
+    out = args.out or (args.run_dirs[0] if len(runs) == 1 else Path("comparison"))
+    if out.exists() and not out.is_dir():
+        raise InputError(f"--out {out}: exists and is not a folder")
+    print(report.comparison_table(runs, metric))
+    out.mkdir(parents=True, exist_ok=True)
+    paths = [out / "compare_quality.png", out / "compare_divergence.png", out / "compare_samples.png"]
+    legends = [(label if s["method"] in label else f"{label} · {s['method']}", s) for label, s in runs]
+    report.quality_vs_steps(legends, metric, paths[0])
+    report.divergence_vs_steps(legends, paths[1])
+    report.samples_side_by_side([(label, d) for (label, _), d in zip(runs, args.run_dirs)], summaries, paths[2])
+    print("plots: " + ", ".join(str(p) for p in paths))
+    return 0
+
+
+# ------------------------------------------------------------------------------------------------ parsing
+DESCRIPTIONS = {
+    "recipes": "List the ready-made recipes: purpose, expected CPU time and the command that runs each.",
+    "draw": "Sample from a finished run's chosen student (or any finished stage): an .npy array and a picture. "
+            "With the default --seed and --count it repeats the samples the stage was scored on.",
+    "compare": "One table with every stage of one or more runs, and plots: quality versus steps (students and the "
+               "teacher's DDIM baseline), divergence per stage, and the stages' samples side by side.",
+}
+
+
+def _parser(verb: str) -> argparse.ArgumentParser:
+    p = _Parser(prog=f"distillrun {verb}", description=DESCRIPTIONS[verb])
+    if verb == "recipes":
+        p.add_argument("name", nargs="?", metavar="NAME", help="print this recipe's YAML instead of the list")
+    elif verb == "draw":
+        p.add_argument("run_dir", type=Path, metavar="RUN_DIR", help="a finished run folder")
+        p.add_argument("--stage", type=int, metavar="N", help="stage index (default: the chosen student)")
+        p.add_argument("--count", type=int, metavar="N", help="how many samples (default: the run's eval.samples)")
+        p.add_argument("--seed", type=int, metavar="S", help="noise seed (default: the run's eval.seed; with the "
+                       "default count this repeats the samples the stage was scored on)")
+        p.add_argument("--out", type=Path, metavar="PATH", help="a .npy file or an existing folder (default: "
+                       "RUN_DIR/drawn/stage-NN_seed-S_n-N.npy); the picture goes beside it as .png")
+    else:
+        p.add_argument("run_dirs", type=Path, nargs="+", metavar="RUN_DIR", help="one or more finished run folders")
+        p.add_argument("--metric", metavar="M", help="quality metric (default: the first run's stop.metric)")
+        p.add_argument("--out", type=Path, metavar="DIR", help="folder for the plots (default: the run folder for "
+                       "one run, ./comparison for several)")
+    return p
+
+
+COMMANDS = {"recipes": cmd_recipes, "draw": cmd_draw, "compare": cmd_compare}
+
+
+def main(verb: str, argv: list[str]) -> int:
+    from .checkpoint import CheckpointError
+    from .pipeline import DataError
+
+    try:
+        return COMMANDS[verb](_parser(verb).parse_args(argv))
+    except (InputError, CheckpointError, DataError) as e:
+        print(f"distillrun {verb}: error: {e}", file=sys.stderr)
+        return EXIT_BAD_INPUT
