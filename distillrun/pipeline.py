@@ -60,7 +60,8 @@ def preflight(cfg: DictConfig):
     data = load_data(cfg)
     if cfg.data.path and cfg.data.name in ("array", "image_folder"):
         _check_spread(cfg, data)
-    if cfg.net.kind == "mlp" and data.is_image or cfg.net.kind == "unet" and not data.is_image:
+    if cfg.teacher.source != "import" and (cfg.net.kind == "mlp" and data.is_image or
+                                           cfg.net.kind == "unet" and not data.is_image):
         raise DataError(f"net.kind={cfg.net.kind} does not fit data of shape {data.shape}; "
                         f"use net={'unet' if data.is_image else 'mlp'}")
     if cfg.net.class_cond and data.labels is None:
