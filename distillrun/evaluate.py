@@ -37,6 +37,7 @@ class Bench:
     feature_net: torch.nn.Module | None = None
     reference_feats: torch.Tensor | None = None
     cache: dict = field(default_factory=dict)  # "teacher@256" -> samples, reused across stages
+    reference_within: float | None = None  # MMD^2's reference-only kernel term, computed once per run
 
 
 def make_bench(data: Dataset, samples: int, projections: int, bootstrap: int, seed: int,
@@ -87,10 +88,11 @@ def quality(bench: Bench, x: torch.Tensor) -> dict[str, float]:
         out["fd_se"] = metrics.bootstrap_se(metrics.frechet_from_features, feats, bench.reference_feats,
                                             reps=bench.bootstrap, seed=bench.seed)
     ref = bench.reference_feats if bench.feature_net is not None else bench.reference
-    sw = lambda a, b: metrics.sliced_w2(a, b, bench.projections)  # noqa: E731
-    out["sw2"] = sw(feats, ref)
-    out["sw2_se"] = metrics.bootstrap_se(sw, feats, ref, reps=bench.bootstrap, seed=bench.seed)
-    out["mmd2"] = metrics.mmd2_rbf(feats, ref, bench.bandwidth)
+    out["sw2"], out["sw2_se"] = metrics.sliced_w2_bootstrap(feats, ref, bench.projections, reps=bench.bootstrap,
+                                                            seed=bench.seed)
+    if bench.reference_within is None:
+        bench.reference_within = metrics.kernel_mean_within(ref, bench.bandwidth)
+    out["mmd2"] = metrics.mmd2_rbf(feats, ref, bench.bandwidth, within_y=bench.reference_within)
     out["mmd2_se"] = metrics.mmd2_block_se(feats, ref, bench.bandwidth, seed=bench.seed)
     if bench.mixture is not None:
         gap = metrics.nll_gap(bench.mixture.log_prob, x, bench.entropy)

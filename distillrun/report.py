@@ -121,7 +121,8 @@ def load_summary(run_dir: Path) -> dict:
 
 
 def divergence_vs_steps(runs: list[tuple[str, dict]], path: Path) -> None:
-    """Same-noise divergence from the original teacher per stage: RMS (solid) and median (dashed), log axes."""
+    """Same-noise divergence from the original teacher per stage: RMS (solid) and median (dashed), log axes.
+    `runs`: (legend label, summary) pairs."""
     fig, ax = plt.subplots(figsize=(6, 4))
     for i, (label, s) in enumerate(runs):
         rows = [r for r in s["stages"] if r["metrics"]]
@@ -129,7 +130,7 @@ def divergence_vs_steps(runs: list[tuple[str, dict]], path: Path) -> None:
         color = f"C{i % 10}"
         for key, style in (("rms", "-"), ("median", "--")):
             ax.plot(steps, [r["metrics"].get(f"divergence/teacher_{key}", math.nan) for r in rows], style,
-                    marker="o", color=color, label=f"{label} · {s['method']}: {key}")
+                    marker="o", color=color, label=f"{label}: {key}")
     ax.set_xscale("log", base=2)
     ax.set_yscale("log")
     ax.set_xlabel("sampler steps (NFE)")
@@ -200,7 +201,7 @@ def comparison_table(runs: list[tuple[str, dict]], metric: str) -> str:
     notes = []
     for label, s in runs:
         c = s["chosen"]
-        chosen = f"stage {c['index']} at {c['steps']} steps" if c else "none within tolerance"
+        chosen = f"stage {c['index']} at {n_steps(c['steps'])}" if c else "none within tolerance"
         notes.append(f"{label}: floor {metric} {_num(s['reference']['floor'].get(metric))}; chosen {chosen}; "
                      f"stopped: {s['stopped_because']}")
     return table + "\n" + "\n".join(notes)

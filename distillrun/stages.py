@@ -34,9 +34,19 @@ def _consistency_plan(cfg) -> list[StageSpec]:
     return [StageSpec(i + 1, n, cfg.teacher.steps, cfg.method.iterations) for i, n in enumerate(cfg.method.steps)]
 
 
+def fast_layout(module, in_place: bool = False):
+    """For a convolutional network (any 4-D weight): its weights in channels-last memory format, on a copy unless
+    in_place; any other module is returned as it is. On CPU the U-Net's stage step runs ~1.06x (student) to ~1.15x
+    (student and teacher) and its sampling ~1.18x faster (benchmarks/channels_last.py). Same weights; the
+    convolution kernels round differently (outputs within ~1e-5 of the contiguous layout's)."""
+    if not isinstance(module, torch.nn.Module) or not any(p.dim() == 4 for p in module.parameters()):
+        return module
+    return (module if in_place else copy.deepcopy(module)).to(memory_format=torch.channels_last)
+
+
 def _progressive_student(cfg, previous: torch.nn.Module, data) -> torch.nn.Module:
     """A fresh trainable copy of the previous stage's denoiser (the teacher's network at stage 1)."""
-    student = copy.deepcopy(previous)
+    student = fast_layout(copy.deepcopy(previous), in_place=True)
     student.requires_grad_(True)
     return student
 
@@ -48,13 +58,14 @@ def _consistency_student(cfg, previous: torch.nn.Module, data) -> torch.nn.Modul
     else:
         sigma_data = cfg.method.sigma_data or data.sigma_data
         student = consistency.ConsistencyModel(copy.deepcopy(previous), sigma_data, cfg.method.sigma_min)
+    student = fast_layout(student, in_place=True)
     student.requires_grad_(True)
     return student
 
 
 def _progressive_train(cfg, spec: StageSpec, teacher, student, data, generator, state_path, quiet, device):
     m = cfg.method
-    loss_fn = progressive.progressive_loss(teacher, spec.steps, m.loss)
+    loss_fn = progressive.progressive_loss(fast_layout(teacher), spec.steps, m.loss)
     loop = LoopSpec(iterations=spec.iterations, lr=m.lr, decay="linear", grad_clip=m.grad_clip, ema_decay=m.ema_decay)
     return train_loop(student, loss_fn, data.batches(m.batch_size, device), loop, generator=generator,
                       state_path=state_path, desc=f"stage {spec.index} ({spec.steps} steps)", quiet=quiet)
@@ -62,7 +73,7 @@ def _progressive_train(cfg, spec: StageSpec, teacher, student, data, generator, 
 
 def _consistency_train(cfg, spec: StageSpec, teacher, student, data, generator, state_path, quiet, device):
     m = cfg.method
-    loss_fn = consistency.consistency_loss(teacher, m, student.sigma_data, data.x[0].numel())
+    loss_fn = consistency.consistency_loss(fast_layout(teacher), m, student.sigma_data, data.x[0].numel())
     loop = LoopSpec(iterations=spec.iterations, lr=m.lr, decay="linear", grad_clip=m.grad_clip, ema_decay=m.ema_decay)
     return train_loop(student, loss_fn, data.batches(m.batch_size, device), loop, generator=generator,
                       state_path=state_path, desc=f"stage {spec.index} ({spec.steps} steps)", quiet=quiet)
@@ -108,5 +119,6 @@ def method_for(name: str) -> Method:
 
 def teacher_sampler(teacher, steps: int, sampler: str = "ddim") -> Callable:
     """The teacher on a uniform grid of `steps` (its full steps, or a baseline at a student's steps)."""
+    teacher = fast_layout(teacher)
     return lambda noise, cond: sample(teacher, noise, uniform_grid(steps), sampler, cond=cond,
                                       generator=torch.Generator().manual_seed(steps))

@@ -1,0 +1,34 @@
+"""Make a baseline copy of the package for side-by-side benchmarks: the working tree's distillrun/ with the files
+the performance work touches put back as they are at a git revision (default HEAD), so a comparison isolates
+those files from other work in progress. Read-only for the repository (`git show`).
+
+Usage: python benchmarks/baseline_tree.py DEST [--rev HEAD]; then e.g.
+       python benchmarks/recipes.py --src DEST --out /tmp/recipes-baseline
+"""
+import argparse
+import shutil
+import subprocess
+from pathlib import Path
+
+PERF_FILES = ["distillrun/evaluate.py", "distillrun/samplers.py", "distillrun/metrics.py",
+              "distillrun/methods/progressive.py", "distillrun/methods/consistency.py",
+              "distillrun/methods/teacher.py", "distillrun/stages.py"]
+
+
+def make(dest: Path, rev: str = "HEAD") -> Path:
+    root = Path(__file__).resolve().parent.parent
+    if (dest / "distillrun").exists():
+        shutil.rmtree(dest / "distillrun")
+    shutil.copytree(root / "distillrun", dest / "distillrun", ignore=shutil.ignore_patterns("__pycache__"))
+    for f in PERF_FILES:
+        text = subprocess.run(["git", "show", f"{rev}:{f}"], cwd=root, check=True, capture_output=True).stdout
+        (dest / f).write_bytes(text)
+    return dest
+
+
+if __name__ == "__main__":
+    p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    p.add_argument("dest", type=Path)
+    p.add_argument("--rev", default="HEAD")
+    a = p.parse_args()
+    print(make(a.dest, a.rev))
