@@ -1,8 +1,9 @@
 """Make a baseline copy of the package for side-by-side benchmarks: the working tree's distillrun/ with the files
-the performance work touches put back as they are at a git revision (default HEAD), so a comparison isolates
-those files from other work in progress. Read-only for the repository (`git show`).
+the performance work touches put back as they are at a git revision, so a comparison isolates those files from
+other work in progress. Read-only for the repository (`git show`).
 
-Usage: python benchmarks/baseline_tree.py DEST [--rev HEAD]; then e.g.
+Usage: python benchmarks/baseline_tree.py DEST [--rev REV]  (default: ef586dc, the last commit before the
+       performance changes); then e.g.
        python benchmarks/recipes.py --src DEST --out /tmp/recipes-baseline
 """
 import argparse
@@ -10,12 +11,13 @@ import shutil
 import subprocess
 from pathlib import Path
 
+BEFORE = "ef586dc"  # the last commit before the performance changes
 PERF_FILES = ["distillrun/evaluate.py", "distillrun/samplers.py", "distillrun/metrics.py",
               "distillrun/methods/progressive.py", "distillrun/methods/consistency.py",
               "distillrun/methods/teacher.py", "distillrun/stages.py"]
 
 
-def make(dest: Path, rev: str = "HEAD") -> Path:
+def make(dest: Path, rev: str = BEFORE) -> Path:
     root = Path(__file__).resolve().parent.parent
     if (dest / "distillrun").exists():
         shutil.rmtree(dest / "distillrun")
@@ -29,6 +31,6 @@ def make(dest: Path, rev: str = "HEAD") -> Path:
 if __name__ == "__main__":
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     p.add_argument("dest", type=Path)
-    p.add_argument("--rev", default="HEAD")
+    p.add_argument("--rev", default=BEFORE)
     a = p.parse_args()
     print(make(a.dest, a.rev))

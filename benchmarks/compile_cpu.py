@@ -80,7 +80,8 @@ def main():
     med = {k: statistics.median(v) for k, v in ms.items()}
     print(f"{a.recipe}: {cfg.net.kind} net, train batch {batch}, forward rows {rows}; {a.threads} thread(s), "
           f"load average {os.getloadavg()[0]:.2f} (at end); CPU-time medians of {a.rounds} rounds x {a.calls} calls")
-    print(f"{'':>11} {'eager ms':>9} {'compiled ms':>11} {'speed-up':>8} {'compile s (wall/CPU)':>21} {'break-even calls':>16}")
+    print(f"{'':>11} {'eager ms':>9} {'compiled ms':>11} {'speed-up':>8} {'compile s (wall/CPU)':>21} "
+          f"{'break-even calls':>16}")
     for n in ("train step", "forward"):
         e, c = med[(n, "eager")], med[(n, "compiled")]
         saved = (e - c) / 1e3

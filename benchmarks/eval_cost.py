@@ -28,7 +28,6 @@ import time
 from pathlib import Path
 
 import torch
-from omegaconf import OmegaConf
 
 sys.path.insert(0, str(Path(__file__).parent))
 
@@ -189,7 +188,8 @@ def main():
         scoring = ref[v.label] + total[v.label] - v.draw_seconds
         print(f"{v.label:>12}: of reference + stages, sampling {v.draw_seconds:.2f} s, scoring {scoring:.2f} s")
     for v in variants[1:]:
-        print(f"max relative difference of any metric, baseline vs {v.label}: {max_rel_diff(base.metrics, v.metrics):.1e}")
+        worst = max_rel_diff(base.metrics, v.metrics)
+        print(f"max relative difference of any metric, baseline vs {v.label}: {worst:.1e}")
     train = sum(records[s.index]["seconds"]["train"] for s in specs)
     teacher_s = json.loads((a.run_dir / "teacher" / "model.json").read_text()).get("seconds", 0.0)
     print(f"training seconds recorded in the run: stages {train:.1f}, teacher {teacher_s:.1f}")

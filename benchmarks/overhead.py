@@ -103,7 +103,8 @@ def inputs(data, batch, k=4):
     out = []
     for _ in range(k):
         x0 = data.batch(batch, g)[0]
-        out.append((torch.randn(x0.shape, generator=g), torch.rand(batch, generator=g), torch.randn(x0.shape, generator=g)))
+        out.append((torch.randn(x0.shape, generator=g), torch.rand(batch, generator=g),
+                    torch.randn(x0.shape, generator=g)))
     return out
 
 
@@ -260,7 +261,8 @@ def main():
     torch.set_num_threads(a.threads)
     print(f"torch {torch.__version__}, {a.threads} thread(s), {a.rounds} rounds, load average at start "
           f"{os.getloadavg()[0]:.2f}; ms/it are CPU-time medians")
-    print(f"{'scenario':>19} {'network, batch':>20} {'stage it/s':>10} {'stage ms':>8} {'teacher ms':>10} {'bare ms':>7} "
+    print(f"{'scenario':>19} {'network, batch':>20} {'stage it/s':>10} {'stage ms':>8} {'teacher ms':>10} "
+          f"{'bare ms':>7} "
           f"{'evals/upd':>9} {'ratio (CPU) [min-max]':>21} {'ratio (wall)':>12} {'loop share':>10} {'ckpt ms':>7} "
           f"{'ratio w/ ckpt':>13} {'proposed: ratio':>15} {'it/s':>6}")
     with tempfile.TemporaryDirectory() as tmp:

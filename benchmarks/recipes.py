@@ -151,6 +151,12 @@ def throughput(folder: Path, count: int, rounds: int, threads: int) -> dict:
         from distillrun.nets.oracle import OracleDenoiser
         from distillrun.schedule import Schedule
         teacher = OracleDenoiser(load_dataset(cfg.data).mixture, Schedule(cfg.teacher.schedule))
+    elif cfg.teacher.source == "import":  # the user's network is not copied into the run folder
+        from distillrun.denoiser import NetDenoiser
+        from distillrun.schedule import Schedule
+        from distillrun.teachers import import_teacher
+        net = import_teacher(cfg.teacher.factory, cfg.teacher.factory_kwargs, cfg.teacher.weights, shape, classes)
+        teacher = NetDenoiser(net, cfg.teacher.parameterization, Schedule(cfg.teacher.schedule)).requires_grad_(False)
     else:
         teacher, _ = verbs.rebuild_student(folder / "teacher", data_fn)
     teacher_fn = stages.teacher_sampler(teacher, cfg.teacher.steps, cfg.teacher.sampler)
@@ -189,7 +195,8 @@ def print_tables(results: list[dict]):
     for r in results:
         for run in r["runs"]:
             ok = "yes" if r["wall_s"] <= TARGET_S[r["recipe"]] else "NO"
-            print(f"{r['recipe']:>24} {run['method']:>11} {r['code']:>4} {r['wall_s']:>7.0f} {ok:>6} {r['peak_mb']:>8.0f} "
+            print(f"{r['recipe']:>24} {run['method']:>11} {r['code']:>4} {r['wall_s']:>7.0f} {ok:>6} "
+                  f"{r['peak_mb']:>8.0f} "
                   f"{run['stages']:>6} {run['train_s']:>8.1f} {run['eval_s']:>7.1f} {100 * run['share_distil']:>9.1f}% "
                   f"{100 * run['share_all']:>7.1f}% {run['metric']:>7} {fmt(run['chosen_steps'], 'd'):>6} "
                   f"{fmt(run['quality']) + ' ± ' + fmt(run['quality_se'], '.2g'):>16} {fmt(run['teacher_q']):>8} "
