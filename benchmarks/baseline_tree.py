@@ -14,7 +14,8 @@ from pathlib import Path
 BEFORE = "ef586dc"  # the last commit before the performance changes
 PERF_FILES = ["distillrun/evaluate.py", "distillrun/samplers.py", "distillrun/metrics.py",
               "distillrun/methods/progressive.py", "distillrun/methods/consistency.py",
-              "distillrun/methods/teacher.py", "distillrun/stages.py"]
+              "distillrun/methods/teacher.py", "distillrun/stages.py", "distillrun/training.py",
+              "distillrun/nets/mlp.py", "distillrun/nets/unet.py", "distillrun/denoiser.py"]
 
 
 def make(dest: Path, rev: str = BEFORE) -> Path:

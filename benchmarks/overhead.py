@@ -7,8 +7,8 @@ the order rotates every round) in one process, so a change in machine load hits 
   teacher  the no-grad network evaluations one stage iteration makes (teacher + EMA target network), counted with
            forward hooks during the stage run and timed as bare forward passes on the same batch shape
   bare     forward + backward + Adam step of the student's network on precomputed inputs and targets
-  proposed the stage loop with the EMA update and gradient clip proposed for training.py swapped in (see
-           ForeachEMA, clip_if_needed; benchmark only, the package is not changed)
+  before   the stage loop with the EMA, optimizer and clip it had before the performance work swapped in
+           (per-tensor avg_fn EMA, per-tensor Adam, clip_grad_norm_; see previous_loop), with its own bare loop
 overhead ratio = bare / (stage - teacher): 1.0 means the loop adds nothing beyond the network's own training step
 and the teacher's evaluations; loop share = (stage - teacher - bare) / stage, the time the loop itself adds.
 Also reported: teacher (and target) evaluations per student update, and the amortised cost of the mid-run state
@@ -25,7 +25,7 @@ from __future__ import annotations
 import argparse
 import contextlib
 import copy
-import itertools
+import math
 import os
 import statistics
 import tempfile
@@ -142,8 +142,8 @@ def teacher_loop(teacher_net, target_net, n_teacher, n_target, batches, n):
                 target_net(x, t)
 
 
-def bare_loop(net, lr, batches, n):
-    opt = torch.optim.Adam([p for p in net.parameters() if p.requires_grad], lr=lr)
+def bare_loop(net, lr, batches, n, make_opt=training.make_optimizer):
+    opt = make_opt(net, lr)
     for i in range(n):
         x, t, target = batches[i % len(batches)]
         loss = ((net(x, t) - target) ** 2).mean()
@@ -152,54 +152,50 @@ def bare_loop(net, lr, batches, n):
         opt.step()
 
 
-class ForeachEMA(AveragedModel):
-    """Proposed EMA for training.py: the same warm-up rate, one torch._foreach_lerp_ over all tensors instead of
-    a Python avg_fn per tensor (rounds differently: a + w (c - a) instead of rate a + (1 - rate) c)."""
+# --- the loop as it was before the performance work (commit ef586dc), for the side-by-side "before" columns
+def previous_ema(model, decay):
+    """AveragedModel with a per-tensor Python avg_fn (same warm-up rate as training.ema_multi_avg_fn)."""
+    if decay <= 0:
+        return model
 
-    def __init__(self, model, decay):
-        super().__init__(model, use_buffers=True)
-        self.decay = decay
-
-    def update_parameters(self, model):
-        avg = [t.detach() for t in itertools.chain(self.module.parameters(), self.module.buffers())]
-        cur = [t.detach() for t in itertools.chain(model.parameters(), model.buffers())]
-        n = int(self.n_averaged)
-        if n == 0:
-            torch._foreach_copy_(avg, cur)
-        else:
-            torch._foreach_lerp_(avg, cur, 1.0 - min(self.decay, (1 + n) / (10 + n)))
-        self.n_averaged += 1
+    def avg(averaged, current, num_averaged):
+        rate = min(decay, (1 + float(num_averaged)) / (10 + float(num_averaged)))
+        return rate * averaged + (1 - rate) * current
+    return AveragedModel(model, avg_fn=avg, use_buffers=True).requires_grad_(False)
 
 
-def clip_if_needed(parameters, max_norm, **_):
-    """Proposed clip for training.py: clip_grad_norm_'s norm, rescaling only when it exceeds max_norm."""
-    grads = [p.grad for p in parameters if p.grad is not None]
-    norm = torch.linalg.vector_norm(torch.stack(torch._foreach_norm(grads)))
-    if norm > max_norm:
-        torch._foreach_mul_(grads, max_norm / (float(norm) + 1e-6))
-    return norm
+def previous_optimizer(model, lr):
+    """torch.optim.Adam with its CPU default: a Python loop over tensors."""
+    return torch.optim.Adam([p for p in model.parameters() if p.requires_grad], lr=lr)
+
+
+def previous_clip(model, max_norm):
+    """clip_grad_norm_, which always rescales (by 1 when the norm is below max_norm)."""
+    return torch.nn.utils.clip_grad_norm_(model.parameters(), max_norm if max_norm > 0 else math.inf)
 
 
 @contextlib.contextmanager
-def proposed_loop():
-    """train_loop with the proposed EMA and clip swapped in (benchmark only; the package is not changed)."""
-    saved = training.make_ema, torch.nn.utils.clip_grad_norm_
-    training.make_ema = lambda model, decay: model if decay <= 0 else ForeachEMA(model, decay).requires_grad_(False)
-    torch.nn.utils.clip_grad_norm_ = clip_if_needed
+def previous_loop():
+    """train_loop with the previous EMA, optimizer and clip swapped in (benchmark only)."""
+    names = ("make_ema", "make_optimizer", "clip_gradients")
+    saved = [getattr(training, k) for k in names]
+    for k, fn in zip(names, (previous_ema, previous_optimizer, previous_clip)):
+        setattr(training, k, fn)
     try:
         yield
     finally:
-        training.make_ema, torch.nn.utils.clip_grad_norm_ = saved
+        for k, fn in zip(names, saved):
+            setattr(training, k, fn)
 
 
-def stage_proposed(student, loss_fn, draw, spec, n, seed):
-    with proposed_loop():
+def stage_previous(student, loss_fn, draw, spec, n, seed):
+    with previous_loop():
         stage_loop(student, loss_fn, draw, spec, n, seed)
 
 
 def checkpoint_ms(student, spec, tmp: Path) -> float:
     """Milliseconds of one mid-run state save (model, EMA, Adam moments), median of 3."""
-    opt = torch.optim.Adam(student.parameters(), lr=1e-4)
+    opt = training.make_optimizer(student, 1e-4)
     for p in student.parameters():  # Adam moments exist after the first step: make them
         p.grad = torch.zeros_like(p)
     opt.step()
@@ -223,11 +219,12 @@ def run(name, scenario, rounds, tmp):
     batches = inputs(data, batch)
     target_net = copy.deepcopy(net).requires_grad_(False)
     bare_net = copy.deepcopy(net).requires_grad_(True)
-    proposed_student = copy.deepcopy(student)
+    previous_student, previous_net = copy.deepcopy(student), copy.deepcopy(net).requires_grad_(True)
     parts = {"stage": lambda: stage_loop(student, loss_fn, draw, spec, n, 0),
              "teacher": lambda: teacher_loop(teacher.net, target_net, n_teacher, n_target, batches, n),
              "bare": lambda: bare_loop(bare_net, spec.lr, batches, n),
-             "proposed": lambda: stage_proposed(proposed_student, loss_fn, draw, spec, n, 0)}
+             "previous": lambda: stage_previous(previous_student, loss_fn, draw, spec, n, 0),
+             "bare (previous)": lambda: bare_loop(previous_net, spec.lr, batches, n, previous_optimizer)}
     for fn in parts.values():
         fn()  # warm-up of each part
     wall, cpu = {k: [] for k in parts}, {k: [] for k in parts}
@@ -240,16 +237,16 @@ def run(name, scenario, rounds, tmp):
             cpu[k].append(1e3 * (time.process_time() - c0) / n)
     ck = checkpoint_ms(copy.deepcopy(student), spec, tmp)
 
-    def ratios(ms, extra=0.0, stage="stage"):  # per round, so a load change between rounds cancels
-        return [b / (s + extra - te) for s, te, b in zip(ms[stage], ms["teacher"], ms["bare"])]
+    def ratios(ms, extra=0.0, stage="stage", bare="bare"):  # per round, so a load change between rounds cancels
+        return [b / (s + extra - te) for s, te, b in zip(ms[stage], ms["teacher"], ms[bare])]
     share = [(s - te - b) / s for s, te, b in zip(cpu["stage"], cpu["teacher"], cpu["bare"])]
     med = {k: statistics.median(v) for k, v in cpu.items()}
     return dict(name=name, net=f"{cfg.net.kind} {sum(p.numel() for p in net.parameters()) / 1e3:.0f}k, batch {batch}",
                 stage=med["stage"], teacher=med["teacher"], bare=med["bare"], n_teacher=n_teacher, n_target=n_target,
                 cpu=ratios(cpu), wall=ratios(wall), share=statistics.median(share), ck=ck,
                 ratio_ck=statistics.median(ratios(cpu, ck / CHECKPOINT_EVERY)),
-                its=1e3 / statistics.median(wall["stage"]), proposed=ratios(cpu, stage="proposed"),
-                its_proposed=1e3 / statistics.median(wall["proposed"]))
+                its=1e3 / statistics.median(wall["stage"]), previous=ratios(cpu, stage="previous", bare="bare (previous)"),
+                its_previous=1e3 / statistics.median(wall["previous"]))
 
 
 def main():
@@ -264,7 +261,7 @@ def main():
     print(f"{'scenario':>19} {'network, batch':>20} {'stage it/s':>10} {'stage ms':>8} {'teacher ms':>10} "
           f"{'bare ms':>7} "
           f"{'evals/upd':>9} {'ratio (CPU) [min-max]':>21} {'ratio (wall)':>12} {'loop share':>10} {'ckpt ms':>7} "
-          f"{'ratio w/ ckpt':>13} {'proposed: ratio':>15} {'it/s':>6}")
+          f"{'ratio w/ ckpt':>13} {'before: ratio':>13} {'it/s':>6} {'speed-up':>8}")
     with tempfile.TemporaryDirectory() as tmp:
         for name in a.only.split(","):
             r = run(name, SCENARIOS[name], a.rounds, Path(tmp))
@@ -273,10 +270,12 @@ def main():
             print(f"{r['name']:>19} {r['net']:>20} {r['its']:>10.1f} {r['stage']:>8.2f} {r['teacher']:>10.2f} "
                   f"{r['bare']:>7.2f} {evals:>9} {statistics.median(c):>8.3f} [{min(c):.2f}-{max(c):.2f}] "
                   f"{statistics.median(w):>12.3f} {100 * r['share']:>9.1f}% {r['ck']:>7.1f} {r['ratio_ck']:>13.3f} "
-                  f"{statistics.median(r['proposed']):>15.3f} {r['its_proposed']:>6.1f}", flush=True)
+                  f"{statistics.median(r['previous']):>13.3f} {r['its_previous']:>6.1f} {r['its'] / r['its_previous']:>8.2f}",
+                  flush=True)
     print(f"load average at end {os.getloadavg()[0]:.2f}; evals/upd = teacher + EMA-target network evaluations per "
           "student update; ratio = bare / (stage - teacher); loop share = (stage - teacher - bare) / stage; "
-          "proposed = the stage loop with the EMA and clip proposed for training.py (ForeachEMA, clip_if_needed)")
+          "before = the same with the loop as it was before the performance work (per-tensor EMA avg_fn and Adam, "
+          "clip_grad_norm_), against a bare loop with that Adam; speed-up = stage it/s now / before")
 
 
 if __name__ == "__main__":

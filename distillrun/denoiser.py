@@ -32,6 +32,12 @@ def as_batch_times(t, x: torch.Tensor) -> torch.Tensor:
     return t.expand(x.shape[0]) if t.dim() == 0 else t
 
 
+def shared_time(t: torch.Tensor) -> bool:
+    """True for a (B,) time that is one value expanded to every row (stride 0), as samplers pass it
+    (as_batch_times): the embedding is then computed once instead of B times."""
+    return t.dim() == 1 and t.shape[0] > 1 and t.stride(0) == 0
+
+
 def target_for(parameterization: str, x0, eps, alpha, sigma):
     """What a network of this parameterization should output for a noisy sample built from (x0, eps)."""
     if parameterization == "v":

@@ -7,7 +7,6 @@ for resume, and the progress bar, so those are written (and tested) once.
 from __future__ import annotations
 
 import contextlib
-import math
 import time
 from contextvars import ContextVar
 from dataclasses import dataclass, field
@@ -86,23 +85,44 @@ def make_scheduler(opt: torch.optim.Optimizer, spec: LoopSpec):
     return SequentialLR(opt, [warm, decay], milestones=[spec.warmup])
 
 
-def ema_avg_fn(decay: float):
+def ema_multi_avg_fn(decay: float):
     """EMA update with warm-up: rate min(decay, (1 + n) / (10 + n)) after n updates, so a short run's EMA
     is not dominated by its first, untrained weights (common practice; e.g. TensorFlow's
-    ExponentialMovingAverage num_updates option, from memory)."""
-    def avg(averaged: torch.Tensor, current: torch.Tensor, num_averaged: torch.Tensor) -> torch.Tensor:
+    ExponentialMovingAverage num_updates option, from memory). One foreach lerp over all tensors:
+    averaged += (1 - rate) (current - averaged). Integer buffers (none in our nets) are copied."""
+    @torch.no_grad()
+    def update(averaged: list[torch.Tensor], current: list[torch.Tensor], num_averaged: torch.Tensor) -> None:
         n = float(num_averaged)
         rate = min(decay, (1 + n) / (10 + n))
-        return rate * averaged + (1 - rate) * current
-    return avg
+        if torch.is_floating_point(averaged[0]):
+            torch._foreach_lerp_(averaged, current, 1.0 - rate)
+        else:
+            torch._foreach_copy_(averaged, current)
+    return update
 
 
 def make_ema(model: nn.Module, decay: float) -> nn.Module:
     if decay <= 0:
         return model
-    ema = AveragedModel(model, avg_fn=ema_avg_fn(decay), use_buffers=True)
+    ema = AveragedModel(model, multi_avg_fn=ema_multi_avg_fn(decay), use_buffers=True)
     ema.requires_grad_(False)
     return ema
+
+
+def make_optimizer(model: nn.Module, lr: float) -> torch.optim.Optimizer:
+    """Adam on the trainable parameters, fused kernel (one pass per step on CPU and CUDA; 6x faster than the
+    per-tensor loop on a 3.7M-parameter MLP on one CPU thread, benchmarks/README.md)."""
+    return torch.optim.Adam([p for p in model.parameters() if p.requires_grad], lr=lr, fused=True)
+
+
+def clip_gradients(model: nn.Module, max_norm: float) -> torch.Tensor:
+    """Total gradient 2-norm (returned, for the divergence check); gradients are rescaled to max_norm only
+    when the norm exceeds it (clip_grad_norm_ always multiplies, by 1 when below). max_norm <= 0: no clip."""
+    grads = [p.grad for p in model.parameters() if p.grad is not None]
+    norm = torch.nn.utils.get_total_norm(grads, foreach=True)
+    if 0 < max_norm < norm:
+        torch.nn.utils.clip_grads_with_norm_(model.parameters(), max_norm, norm, foreach=True)
+    return norm
 
 
 def kept_model(ema: nn.Module) -> nn.Module:
@@ -162,7 +182,7 @@ def train_loop(model: nn.Module, loss_fn: Callable, draw_batch: Callable, spec: 
     bit (same thread count), because every random draw of the loop comes from `generator`."""
     save_every = spec.save_every or _CHECKPOINT_EVERY.get()
     kill_label = Path(state_path).parent.name if state_path is not None and checkpoint.KILL_AT else None
-    opt = torch.optim.Adam([p for p in model.parameters() if p.requires_grad], lr=spec.lr)
+    opt = make_optimizer(model, spec.lr)
     sched = make_scheduler(opt, spec)
     ema = make_ema(model, spec.ema_decay)
     trained = distributed.replicate(model)  # DDP under torchrun (gradients averaged over ranks), else model
@@ -178,7 +198,7 @@ def train_loop(model: nn.Module, loss_fn: Callable, draw_batch: Callable, spec: 
             loss = loss_fn(trained, kept_model(ema), draw_batch(generator), generator)
         opt.zero_grad(set_to_none=True)
         loss.backward()
-        grad_norm = torch.nn.utils.clip_grad_norm_(model.parameters(), spec.grad_clip if spec.grad_clip > 0 else math.inf)
+        grad_norm = clip_gradients(model, spec.grad_clip)
         result.failed = _check(loss.detach(), grad_norm, it)
         if result.failed:
             break

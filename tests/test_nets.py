@@ -112,3 +112,25 @@ def test_same_seed_same_network_and_rebuild_from_arch(kind, shape, kwargs):
         rebuilt = NETS[kind](**a.arch)  # what a checkpoint does: class from kind, kwargs from arch
         rebuilt.load_state_dict(a.state_dict())
         torch.testing.assert_close(rebuilt(x, t, cond), a(x, t, cond), rtol=0, atol=0)
+
+
+@pytest.mark.parametrize("kind,classes,labelled", [("mlp", 0, False), ("mlp", 3, False), ("mlp", 3, True),
+                                                   ("unet", 0, False), ("unet", 3, True)])
+def test_a_shared_time_is_embedded_once_with_the_same_output(kind, classes, labelled):
+    # Samplers pass one time for every row as a stride-0 expanded tensor (denoiser.as_batch_times); the nets
+    # then embed it once and broadcast. Reference: the same net on a contiguous copy of the times.
+    torch.manual_seed(0)
+    net = TimeMLP(2, width=32, depth=2, num_classes=classes) if kind == "mlp" else \
+        SmallUNet(channels=1, image_size=8, base=8, num_classes=classes)
+    x = torch.randn(5, 2) if kind == "mlp" else torch.randn(5, 1, 8, 8)
+    cond = torch.tensor([0, 1, 2, 3, 0]) if labelled else None
+    shared = torch.tensor(0.3).expand(5)
+    rows = []
+    hook = net.embed.time_mlp.register_forward_hook(lambda m, i, o: rows.append(i[0].shape[0]))
+    with torch.no_grad():
+        got = net(x, shared, cond)
+        want = net(x, shared.contiguous(), cond)
+    hook.remove()
+    assert rows == [1, 5]
+    assert got.shape == want.shape
+    torch.testing.assert_close(got, want, rtol=1e-5, atol=1e-6)

@@ -16,7 +16,7 @@ import math
 import torch
 from torch import nn
 
-from ..denoiser import Denoiser, NetDenoiser
+from ..denoiser import Denoiser, NetDenoiser, shared_time
 from ..distributed import current_shard
 from ..schedule import broadcast, karras_sigmas
 
@@ -116,9 +116,12 @@ def denoise_ve(denoiser: Denoiser, x_ve: torch.Tensor, sigma, cond=None) -> torc
     """D(x_ve, sigma) = E[x0 | x_ve] through the VP-frame denoiser: x_t = alpha x_ve, alpha = 1/sqrt(1 + sigma^2),
     t = t(sigma_ve) (Karras et al. 2022, Sec. 2; DESIGN.md Sec. 2). x0 is the same in both frames."""
     sigma = per_sample_sigma(sigma, x_ve)
-    t = denoiser.schedule.t_from_sigma_ve(sigma)
+    if shared_time(sigma):  # one level for all rows: keep t expanded so the net embeds it once
+        t = denoiser.schedule.t_from_sigma_ve(sigma[:1]).to(x_ve.dtype).expand(sigma.shape[0])
+    else:
+        t = denoiser.schedule.t_from_sigma_ve(sigma).to(x_ve.dtype)
     alpha = broadcast((1.0 + sigma**2).rsqrt(), x_ve)
-    x0_hat, _ = denoiser.predict(alpha * x_ve, t.to(x_ve.dtype), cond)
+    x0_hat, _ = denoiser.predict(alpha * x_ve, t, cond)
     return x0_hat.to(x_ve.dtype)
 
 

@@ -8,6 +8,8 @@ from __future__ import annotations
 import torch
 from torch import nn
 
+from ..denoiser import shared_time
+
 # Highest angular frequency of the time features. With t in [0, 1] the lowest frequency (1 rad per
 # unit t) resolves the whole range and 1000 rad resolves steps of ~1e-3, i.e. a 1000-step grid
 # (common practice: sinusoidal embeddings of integer steps 0..999).
@@ -38,11 +40,14 @@ class CondEmbedding(nn.Module):
         self.label_emb = nn.Embedding(num_classes + 1, width) if num_classes > 0 else None
 
     def forward(self, t: torch.Tensor, cond: torch.Tensor | None = None) -> torch.Tensor:
-        emb = self.time_mlp(fourier_features(t, self.time_features))
+        """(B, width), or (1, width) when every row shares one time (see shared_time) and there are no
+        per-row labels: callers add it by broadcasting, so per-row work is not repeated B times."""
+        shared = shared_time(t)
+        emb = self.time_mlp(fourier_features(t[:1] if shared else t, self.time_features))
         if self.label_emb is None:
             return emb
         if cond is None:
-            cond = torch.full((t.shape[0],), self.num_classes, dtype=torch.long, device=t.device)
+            cond = torch.full((1 if shared else t.shape[0],), self.num_classes, dtype=torch.long, device=t.device)
         return emb + self.label_emb(cond.long())
 
 
@@ -79,8 +84,8 @@ class TimeMLP(nn.Module):
         self.out = nn.Linear(width, dim)  # default init on purpose: students start from teacher weights
 
     def forward(self, x: torch.Tensor, t: torch.Tensor, cond: torch.Tensor | None = None) -> torch.Tensor:
-        emb = self.embed(t, cond)  # (B, width)
-        h = self.inp(torch.cat([x, emb], dim=1))
+        emb = self.embed(t, cond)  # (B, width), or (1, width) for a shared time
+        h = self.inp(torch.cat([x, emb.expand(x.shape[0], -1)], dim=1))
         for block in self.blocks:
             h = block(h, emb)
         return self.out(torch.nn.functional.silu(self.out_norm(h)))

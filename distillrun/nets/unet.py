@@ -35,7 +35,7 @@ class ConvBlock(nn.Module):
 
     def forward(self, x: torch.Tensor, emb: torch.Tensor) -> torch.Tensor:
         h = self.conv1(F.silu(self.norm1(x)))
-        scale, shift = self.film(emb)[:, :, None, None].chunk(2, dim=1)  # (B, c_out, 1, 1) each
+        scale, shift = self.film(emb)[:, :, None, None].chunk(2, dim=1)  # (B or 1, c_out, 1, 1) each
         h = self.conv2(F.silu(self.norm2(h) * (1 + scale) + shift))
         return self.skip(x) + h
 
@@ -66,7 +66,7 @@ class SmallUNet(nn.Module):
         self.conv_out = nn.Conv2d(widths[0], channels, 3, padding=1)
 
     def forward(self, x: torch.Tensor, t: torch.Tensor, cond: torch.Tensor | None = None) -> torch.Tensor:
-        emb = self.embed(t, cond)  # (B, 4 base)
+        emb = self.embed(t, cond)  # (B, 4 base), or (1, 4 base) for a shared time (broadcast in FiLM)
         h, skips = self.conv_in(x), []
         for block, down in zip(self.down_blocks, self.downsamples):
             h = block(h, emb)
