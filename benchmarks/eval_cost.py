@@ -11,8 +11,9 @@ recorded training seconds (stage records' seconds.train, teacher/model.json's se
 
 Usage (repository root):
     python benchmarks/baseline_tree.py /tmp/distillrun-base
-    OMP_NUM_THREADS=1 python benchmarks/eval_cost.py RUN_DIR --baseline /tmp/distillrun-base [--threads 1] [--proposed]
---proposed adds a third variant: the current code with the shared time embedding proposed for nets/mlp.py.
+    OMP_NUM_THREADS=1 python benchmarks/eval_cost.py RUN_DIR --baseline /tmp/distillrun-base [--threads 1]
+The networks themselves are rebuilt by the current package; the baseline runs them with the per-row time
+embedding they had before (shared_time.per_row_time).
 """
 from __future__ import annotations
 
@@ -30,6 +31,7 @@ from pathlib import Path
 import torch
 
 sys.path.insert(0, str(Path(__file__).parent))
+from shared_time import per_row_time  # noqa: E402
 
 import distillrun  # noqa: E402
 from distillrun import verbs  # noqa: E402
@@ -48,7 +50,7 @@ def load_package(src: Path, name: str = "distillrun_base"):
 
 class Variant:
     """One package's evaluation of the run: bench, reference, then stage after stage. `patch`: a context manager
-    entered around each of this variant's steps (used to try a change proposed for another file)."""
+    entered around each of this variant's steps (the baseline's per-row time embedding)."""
 
     def __init__(self, label: str, pkg_name: str, cfg, data, teacher, patch=contextlib.nullcontext):
         self.label, self.patch = label, patch
@@ -107,21 +109,6 @@ class Variant:
         self.previous = x
 
 
-@contextlib.contextmanager
-def shared_time_embedding():
-    """Proposed for nets/mlp.py (benchmarks/loop_parts.py): TimeMLP embeds a time shared by all rows once."""
-    from distillrun.nets.mlp import TimeMLP
-    from loop_parts import shared_time_forward
-
-    saved = TimeMLP.forward
-    TimeMLP.forward = lambda self, x, t, cond=None: shared_time_forward(self, x, t, cond) \
-        if t.dim() == 1 and t.shape[0] > 1 and bool((t == t[:1]).all()) and cond is None else saved(self, x, t, cond)
-    try:
-        yield
-    finally:
-        TimeMLP.forward = saved
-
-
 def max_rel_diff(a: dict, b: dict) -> float:
     worst = 0.0
     for key, va in a.items():
@@ -138,8 +125,6 @@ def main():
     p.add_argument("run_dir", type=Path)
     p.add_argument("--baseline", type=Path, required=True, help="folder holding the baseline distillrun package")
     p.add_argument("--threads", type=int, default=1)
-    p.add_argument("--proposed", action="store_true", help="add a third variant: current code with the shared time "
-                   "embedding proposed for nets/mlp.py (MLP networks only)")
     a = p.parse_args()
     torch.set_num_threads(a.threads)
     load_package(a.baseline.resolve())
@@ -159,10 +144,9 @@ def main():
     specs = [StageSpec(**s) for s in json.loads((a.run_dir / "plan.json").read_text())]
     records = {r["index"]: r for r in summary["stages"]}
     specs = [s for s in specs if s.index in records and not records[s.index]["failed"]]
-    variants = [Variant("baseline", "distillrun_base", cfg, data, teacher), Variant("current", "distillrun", cfg, data,
-                                                                                   teacher)]
-    if a.proposed:
-        variants.append(Variant("proposed", "distillrun", cfg, data, teacher, shared_time_embedding))
+    # The networks are rebuilt by the current package; per_row_time gives the baseline their old per-row embedding.
+    variants = [Variant("baseline", "distillrun_base", cfg, data, teacher, per_row_time),
+                Variant("current", "distillrun", cfg, data, teacher)]
     print(f"run {a.run_dir} ({summary['method']}, {len(specs)} stages), {a.threads} thread(s), "
           f"load average {os.getloadavg()[0]:.2f}; baseline {a.baseline}, current {Path(distillrun.__file__).parent}")
     order = list(range(len(variants)))

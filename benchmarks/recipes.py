@@ -47,7 +47,7 @@ def build_teacher(width={width}, depth={depth}):
 
 def child_env(src: str | None, threads: int, out: Path) -> dict:
     env = dict(os.environ, OMP_NUM_THREADS=str(threads), MLFLOW_DISABLE_TELEMETRY="true")
-    paths = [p for p in (src, str(out)) if p]
+    paths = [str(Path(p).resolve()) for p in (src, out) if p]
     env["PYTHONPATH"] = os.pathsep.join(paths + ([env["PYTHONPATH"]] if env.get("PYTHONPATH") else []))
     return env
 
@@ -56,7 +56,9 @@ def run_child(argv: list[str], env: dict, log: Path) -> tuple[int, float, float]
     """(exit code, wall seconds, peak resident MB) of one child process."""
     t0 = time.perf_counter()
     with open(log, "w") as f:
-        p = subprocess.Popen(argv, stdout=f, stderr=subprocess.STDOUT, env=env)
+        # cwd = the log's folder, not the repository root: `python -c` puts its working folder first on sys.path,
+        # which would import the checkout's package instead of --src
+        p = subprocess.Popen(argv, stdout=f, stderr=subprocess.STDOUT, env=env, cwd=log.parent)
         _, status, usage = os.wait4(p.pid, 0)
     p.returncode = os.waitstatus_to_exitcode(status)
     return p.returncode, time.perf_counter() - t0, usage.ru_maxrss / 1024  # Linux: ru_maxrss in KiB
@@ -177,8 +179,11 @@ def throughput_child(folder: Path, args) -> dict:
     """Run `throughput` in a fresh child (its own memory, one thread), return its JSON."""
     code = ("import json, sys; from pathlib import Path; sys.path.insert(0, 'benchmarks'); import recipes; "
             f"print(json.dumps(recipes.throughput(Path({str(folder)!r}), {args.count}, {args.rounds}, 1)))")
+    code = code.replace("'benchmarks'", repr(str(Path(__file__).resolve().parent)))
+    # cwd = the output folder: `python -c` puts its working folder first on sys.path, and from the repository root
+    # that would import the checkout's package instead of --src
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
-                         env=child_env(args.src, 1, Path(args.out)), cwd=Path(__file__).parent.parent)
+                         env=child_env(args.src, 1, Path(args.out)), cwd=args.out)
     if out.returncode:
         return {"error": out.stderr.strip().splitlines()[-1]}
     return json.loads(out.stdout.strip().splitlines()[-1])
