@@ -37,7 +37,8 @@ def judge(quality: dict, teacher: dict, metric: str, tolerance: float, mode: str
     if not math.isfinite(q):
         return Verdict(FAILED, q, limit, math.nan, f"{metric} is not finite")
     margin = limit - (q - z * se)
-    rule = f"{metric}={q:.4g} (se {se:.2g}) vs limit {limit:.4g} ({mode} tolerance {tolerance:g}, z={z:g})"
+    rule = (f"{metric}={q:.4g} (se {se:.2g}, student and teacher combined) vs limit {limit:.4g} "
+            f"({mode} tolerance {tolerance:g}, z={z:g})")
     return Verdict(WITHIN if margin >= 0 else OVER, q, limit, margin, rule)
 
 
