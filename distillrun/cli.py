@@ -95,7 +95,7 @@ def unknown_addition(cfg, key: str) -> bool:
 
     from omegaconf import OmegaConf
 
-    if "." not in key and files("distillrun.configs").joinpath(key).is_dir():
+    if "." not in key and (key == "recipe" or files("distillrun.configs").joinpath(key).is_dir()):
         return False  # +group=option: a config group
     head, _, name = key.rpartition(".")
     parent = OmegaConf.select(cfg, head) if head else cfg
@@ -195,7 +195,7 @@ def hydra_main() -> None:
     import hydra
 
     precheck(sys.argv[1:])
-    hydra.main(config_path="configs", config_name="run", version_base="1.3")(run_job)()
+    hydra.main(config_path="pkg://distillrun.configs", config_name="run", version_base="1.3")(run_job)()
 
 
 def main() -> None:

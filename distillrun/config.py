@@ -156,6 +156,16 @@ def register_configs() -> None:
                         ("stop", StopConfig), ("tracking", TrackingConfig), ("compute", ComputeConfig),
                         ("method", ProgressiveConfig), ("method", ConsistencyConfig)]:
         cs.store(group=group, name=f"{node.__name__.removesuffix('Config').lower()}_schema", node=node)
+    for path in recipe_files():  # top-level recipes/ (installed as distillrun.recipes) is the `recipe` group
+        cs.store(group="recipe", name=path.stem, node=OmegaConf.load(path), package="_global_")
+
+
+def recipe_files() -> list:
+    """The recipe YAMLs, sorted by name: each sets keys anywhere in the config (`# @package _global_`)."""
+    from importlib.resources import files
+
+    return sorted((p for p in files("distillrun.recipes").iterdir() if p.name.endswith(".yaml")),
+                  key=lambda p: p.name)
 
 
 def _one_of(key: str, value, options) -> None:
@@ -244,9 +254,9 @@ def _validate_method(cfg: DictConfig) -> None:
     if m.name == "progressive":
         _one_of("method.loss", m.loss, ("snr_trunc", "v"))
         ratio = cfg.teacher.steps / m.target_steps if m.target_steps > 0 else 0
-        if m.target_steps < 1 or ratio != int(ratio) or not _power_of_two(int(ratio)):
+        if m.target_steps < 1 or ratio != int(ratio) or ratio < 2 or not _power_of_two(int(ratio)):
             raise ConfigError("method.target_steps", m.target_steps,
-                              f"must be teacher.steps={cfg.teacher.steps} divided by a power of two")
+                              f"must be teacher.steps={cfg.teacher.steps} divided by a power of two >= 2")
         if not 0 <= m.ema_decay < 1:
             raise ConfigError("method.ema_decay", m.ema_decay, "must be in [0, 1)")
         return

@@ -16,7 +16,6 @@ from pathlib import Path
 from types import SimpleNamespace
 
 EXIT_BAD_INPUT = 2
-RECIPE_DIR = Path(__file__).parent / "configs" / "recipe"
 HEADER_KEYS = ("Purpose", "Command", "CPU time")
 
 
@@ -52,7 +51,15 @@ def recipe_header(path: Path) -> dict:
 
 
 def recipe_names() -> list[str]:
-    return sorted(p.stem for p in RECIPE_DIR.glob("*.yaml"))
+    from .config import recipe_files
+
+    return [Path(p.name).stem for p in recipe_files()]
+
+
+def recipe_path(name: str):
+    from importlib.resources import files
+
+    return files("distillrun.recipes").joinpath(f"{name}.yaml")
 
 
 def first_sentence(text: str) -> str:
@@ -65,12 +72,12 @@ def cmd_recipes(args) -> int:
     if args.name is not None:
         if args.name not in names:
             raise InputError(f"recipe '{args.name}' not found; valid: {', '.join(names)}")
-        path = RECIPE_DIR / f"{args.name}.yaml"
+        path = recipe_path(args.name)
         print(f"# {path}\n{path.read_text()}", end="")
         return 0
     print(f"{len(names)} recipes. Run one: distillrun recipe=NAME   Its YAML and details: distillrun recipes NAME\n")
     for name in names:
-        h = recipe_header(RECIPE_DIR / f"{name}.yaml")
+        h = recipe_header(recipe_path(name))
         print(f"{name}: {first_sentence(h.get('Purpose', '(no purpose stated)'))}")
         print(f"    CPU time: {h.get('CPU time', 'not stated')}")
         lines, prefix = h.get("Command", [f"distillrun recipe={name}"]), "$ "

@@ -1,4 +1,4 @@
-"""Every YAML under distillrun/configs composes and validates; bad values fail early with an error naming the full
+"""Every YAML under configs/ and recipes/ composes and validates; bad values fail early with an error naming the full
 key; the CLI turns them into one line on stderr and exit code 2, writing nothing. Source: the project's own contract
 (DESIGN.md §4 'Errors'; STYLE.md points 5 and 11) and Hydra's documented compose API (hydra.compose,
 initialize_config_module, version_base 1.3)."""
@@ -17,12 +17,14 @@ from omegaconf.errors import OmegaConfBaseException
 import distillrun
 from distillrun.config import ConfigError, register_configs, validate
 
-CONFIGS = Path(distillrun.__file__).parent / "configs"
+CONFIGS = Path(distillrun.__file__).parent.parent / "configs"
+RECIPES = CONFIGS.parent / "recipes"  # the `recipe` group
 
 
 def _options() -> list[tuple[str, str]]:
-    """(group, option) for every YAML file in a config group folder."""
-    return sorted((p.parent.name, p.stem) for p in CONFIGS.glob("*/*.yaml"))
+    """(group, option) for every YAML file in a config group folder and every recipe."""
+    return sorted([(p.parent.name, p.stem) for p in CONFIGS.glob("*/*.yaml")] +
+                  [("recipe", p.stem) for p in RECIPES.glob("*.yaml")])
 
 
 @pytest.fixture(scope="module", autouse=True)

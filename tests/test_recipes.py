@@ -82,7 +82,7 @@ def user_files(tmp_path, monkeypatch):
 # ------------------------------------------------------------------------------------------- headers
 @pytest.mark.parametrize("name", RECIPES)
 def test_header_states_purpose_command_and_cpu_time(name):
-    path = verbs.RECIPE_DIR / f"{name}.yaml"
+    path = verbs.recipe_path(name)
     assert path.read_text().splitlines()[0] == "# @package _global_"
     header = verbs.recipe_header(path)
     assert set(header) == set(verbs.HEADER_KEYS), f"{name}: header has {sorted(header)}"
