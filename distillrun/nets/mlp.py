@@ -70,6 +70,9 @@ class TimeMLP(nn.Module):
     """net(x (B, dim), t (B,), cond (B,) or None) -> (B, dim). The input layer sees [x, emb(t, cond)];
     every residual block adds a projection of the same embedding."""
 
+    images = False  # takes (d,) vectors
+    size_keys = ("width", "depth")  # the net.* config keys that size it
+
     def __init__(self, dim: int, width: int = 256, depth: int = 4, time_features: int = 32,
                  num_classes: int = 0, layer_norm: bool = False):
         super().__init__()
