@@ -32,7 +32,7 @@ class DataConfig:
 @dataclass
 class NetConfig:
     kind: str = "mlp"  # mlp (vectors) | unet (images)
-    width: int = 128  # mlp; 128 x 3 blocks fits the 2D sets within ~2x the exact denoiser's SW2 (measured)
+    width: int = 128  # mlp; 128 x 3 blocks fits the 2D sets (benchmarks/README.md)
     depth: int = 3  # mlp residual blocks
     base: int = 32  # unet channels at full resolution
     mults: list[int] = field(default_factory=lambda: [1, 2])  # unet channel multipliers per level

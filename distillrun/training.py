@@ -93,8 +93,8 @@ def make_ema(model: nn.Module, decay: float) -> nn.Module:
 
 
 def make_optimizer(model: nn.Module, lr: float) -> torch.optim.Optimizer:
-    """Adam on the trainable parameters with the fused kernel (CPU and CUDA): one CPU step is 2.5-6x faster than
-    the default per-tensor loop on our networks (benchmarks/optimizer_step.py)."""
+    """Adam on the trainable parameters with the fused kernel (CPU and CUDA): faster than the default per-tensor
+    loop on our networks (benchmarks/optimizer_step.py; numbers in benchmarks/README.md)."""
     return torch.optim.Adam([p for p in model.parameters() if p.requires_grad], lr=lr, fused=True)
 
 

@@ -92,9 +92,3 @@ class TimeMLP(nn.Module):
         for block in self.blocks:
             h = block(h, emb)
         return self.out(torch.nn.functional.silu(self.out_norm(h)))
-
-
-def count_params(net: nn.Module) -> int:
-    """Number of trainable scalars (for logs and reports)."""
-    return sum(p.numel() for p in net.parameters() if p.requires_grad)
-
