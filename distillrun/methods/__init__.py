@@ -13,7 +13,9 @@ A method tells the pipeline, the verbs and validation everything they need, thro
   save_meta / rebuild  the extra model.json keys of a saved student, and the student rebuilt from them
 
 `register(method)` adds a method to METHODS; `method_named(name)` looks one up (a clear error for unknown names).
-The teacher's own training (methods/teacher.py) is not a method: it makes the network the stages start from.
+Every module of this package is imported when it loads, so a new method is one new file here (plus an optional
+YAML in configs/method/). The teacher's own training (methods/teacher.py) is not a method: it makes the
+network the stages start from.
 """
 from __future__ import annotations
 
@@ -138,4 +140,15 @@ def method_named(name: str) -> Method:
     return METHODS[name]
 
 
-from . import progressive, consistency  # noqa: E402,F401,I001  (the built-in methods register themselves)
+def _load_builtin_methods() -> None:
+    """Import every module of this package (except the teacher's losses): each registers its method, so a new
+    method is one new file here."""
+    import importlib
+    import pkgutil
+
+    for module in pkgutil.iter_modules(__path__):
+        if module.name != "teacher":
+            importlib.import_module(f"{__name__}.{module.name}")
+
+
+_load_builtin_methods()
