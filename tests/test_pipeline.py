@@ -8,24 +8,18 @@ import json
 import os
 
 import pytest
-from hydra import compose, initialize_config_module
+from conftest import TINY as TINY_SIZES, compose_run
 
 from distillrun import pipeline
-from distillrun.config import register_configs, validate
+from distillrun.config import validate
 from distillrun.recorder import recorder_for
 
-os.environ.setdefault("MLFLOW_DISABLE_TELEMETRY", "true")
-TINY = ["teacher.iterations=150", "teacher.steps=8", "method.iterations=30", "eval.samples=256",
-        "eval.bootstrap=5", "eval.projections=16", "compute.threads=1", "quiet=true", "data.n_train=4096",
-        "net.width=32", "net.depth=2"]
+TINY = ["teacher.iterations=150", "teacher.steps=8", "method.iterations=30", *TINY_SIZES]
 
 
 def make_cfg(tmp_path, *extra):
-    register_configs()
-    with initialize_config_module("distillrun.configs", version_base="1.3"):
-        cfg = compose("run", overrides=[*TINY, f"run_dir={tmp_path / 'run'}",
-                                        f"tracking.uri=sqlite:///{tmp_path / 'store.db'}",
-                                        f"tracking.artifacts={tmp_path / 'artifacts'}", *extra])
+    cfg = compose_run(*TINY, f"run_dir={tmp_path / 'run'}", f"tracking.uri=sqlite:///{tmp_path / 'store.db'}",
+                      f"tracking.artifacts={tmp_path / 'artifacts'}", *extra)
     validate(cfg)
     return cfg
 
