@@ -192,3 +192,43 @@ def test_each_stage_distils_the_previous_stage_student(tmp_path, monkeypatch):
         assert starts[steps].keys() == saved.keys()
         for k in saved:
             assert torch.equal(starts[steps][k], saved[k]), (folder, k)
+
+
+def test_consistency_stages_continue_the_student_and_keep_the_teacher(tmp_path, monkeypatch):
+    # Song et al. 2023, Alg. 2 distils the teacher's ODE, so every stage's teacher is the run's teacher (here the
+    # exact mixture denoiser, teacher=oracle); a later stage (fewer sampling steps) continues training the previous
+    # stage's consistency model rather than starting again (this project's staging). Recorded at each stage's first
+    # loss call, checked against the previous stage's saved weights.
+    from distillrun.methods import consistency
+    from distillrun.nets.oracle import OracleDenoiser
+
+    teachers, starts = [], []
+    original_loss = consistency.consistency_loss
+
+    def recording_loss(teacher, *args, **kwargs):
+        inner = original_loss(teacher, *args, **kwargs)
+        teachers.append(teacher)
+        first = []
+
+        def loss(model, *rest):
+            if not first:
+                first.append(1)
+                starts.append({k: v.detach().clone() for k, v in model.state_dict().items()})
+            return inner(model, *rest)
+        return loss
+
+    monkeypatch.setattr(consistency, "consistency_loss", recording_loss)
+    cfg = compose_run(*TINY_SIZES, "teacher=oracle", "teacher.iterations=40", "teacher.steps=8", "method=consistency",
+                      "method.steps=[2,1]", "method.grid_points=8", "method.iterations=3", "tracking=off",
+                      "stop.tolerance=1000", f"run_dir={tmp_path / 'run'}")
+    with recorder_for(cfg) as rec:
+        summary = pipeline.run(cfg, rec)
+    assert [s["steps"] for s in summary["stages"]] == [2, 1] and len(teachers) == len(starts) == 2
+    assert all(isinstance(t, OracleDenoiser) for t in teachers)
+    run_dir = tmp_path / "run"
+    for start, folder in zip(starts, ("teacher", "stage-01")):
+        saved = load_file(str(run_dir / folder / "weights.safetensors"))
+        net = {k.split("net.", 1)[1]: v for k, v in start.items() if "net." in k}  # the wrapped network's weights
+        assert net.keys() == {k.split("net.", 1)[1] for k in saved}, folder
+        for k, v in saved.items():
+            assert torch.equal(net[k.split("net.", 1)[1]], v), (folder, k)
