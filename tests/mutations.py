@@ -38,6 +38,9 @@ class Mutation:
     old: str  # exact text, found exactly once
     new: str
     tests: tuple[str, ...]  # pytest arguments (files or node ids) relative to the repository root
+    # The same break written for the code after the method seam (one module per method): (file, old, new).
+    # Exactly one of the patch and its alternatives must apply; drop these once the seam is on main.
+    alternatives: tuple[tuple[str, str, str], ...] = ()
 
 
 PIPELINE = "tests/test_pipeline.py"
@@ -47,14 +50,18 @@ MUTATIONS = [
              "distillrun/pipeline.py",
              'if not distributed.share_flag(record["verdict"] == stopping.WITHIN):',
              'if not distributed.share_flag(record["verdict"] != stopping.FAILED):',
-             (PIPELINE, "tests/test_stopping.py")),
+             (PIPELINE, "tests/test_stopping.py"),
+             (("distillrun/pipeline.py", 'go_on = record["verdict"] == stopping.WITHIN',
+               'go_on = record["verdict"] != stopping.FAILED'),)),
     Mutation("no_chaining", "(b) a stage's student never becomes the next stage's teacher",
              "distillrun/pipeline.py",
              '        previous, previous_samples = student, x\n        if cfg.method.name == "progressive":\n'
              '            stage_teacher = student\n',
              '        previous, previous_samples = student, x\n        if cfg.method.name == "progressive":\n'
              '            pass\n',
-             (PIPELINE, "tests/test_progressive.py")),
+             (PIPELINE, "tests/test_progressive.py"),
+             (("distillrun/pipeline.py", "        if run.method.chains_teacher:\n            stage_teacher = student\n",
+               "        if run.method.chains_teacher:\n            pass\n"),)),
     Mutation("lowest_interval_never_drawn", "(c) the consistency loss never samples the lowest interval of its grid",
              "distillrun/methods/consistency.py",
              "n = torch.randint(0, sigmas.shape[0] - 1, (x0.shape[0],), generator=generator)",
@@ -79,7 +86,8 @@ MUTATIONS = [
              "distillrun/pipeline.py",
              'if not distributed.share_flag(record["verdict"] == stopping.WITHIN):',
              'if not distributed.share_flag(True):',
-             (PIPELINE, "tests/test_stopping.py")),
+             (PIPELINE, "tests/test_stopping.py"),
+             (("distillrun/pipeline.py", 'go_on = record["verdict"] == stopping.WITHIN', "go_on = True"),)),
     Mutation("chooses_most_steps", "the chosen student is the passing one with the most steps, not the fewest",
              "distillrun/stopping.py",
              'return min(passing, key=lambda s: (s["steps"], -s["index"])) if passing else None',
@@ -94,7 +102,10 @@ MUTATIONS = [
              "distillrun/stages.py",
              "loss_fn = progressive.progressive_loss(fast_layout(teacher), spec.steps, m.loss)",
              "loss_fn = progressive.progressive_loss(fast_layout(student), spec.steps, m.loss)",
-             (PIPELINE, "tests/test_progressive.py")),
+             (PIPELINE, "tests/test_progressive.py"),
+             (("distillrun/methods/progressive.py",
+               "return progressive_loss(fast_layout(job.teacher), job.spec.steps, cfg.method.loss)",
+               "return progressive_loss(fast_layout(job.student), job.spec.steps, cfg.method.loss)"),)),
     Mutation("student_times_shifted", "progressive student times shifted one grid step down (i in 0..N-1)",
              "distillrun/methods/progressive.py",
              "return torch.randint(1, steps + 1, (batch,), generator=generator, dtype=torch.float64) / steps",
@@ -123,21 +134,24 @@ def make_copy(dest: Path) -> Path:
             shutil.copytree(src, dest / name, ignore=ignore)
         elif src.exists():
             shutil.copy2(src, dest / name)
-    shutil.copytree(ROOT / "configs", dest / "distillrun" / "configs", ignore=ignore)
-    shutil.copytree(ROOT / "recipes", dest / "distillrun" / "recipes", ignore=ignore)
+    shutil.copytree(ROOT / "configs", dest / "distillrun" / "configs", ignore=ignore, dirs_exist_ok=True)
+    shutil.copytree(ROOT / "recipes", dest / "distillrun" / "recipes", ignore=ignore, dirs_exist_ok=True)
     return dest
 
 
-def apply(mutation: Mutation, copy: Path) -> None:
-    path = copy / mutation.file
-    if not path.exists():
-        raise SystemExit(f"mutation {mutation.name}: {mutation.file} does not exist (the code moved; update the patch)")
-    text = path.read_text()
-    found = text.count(mutation.old)
-    if found != 1:
-        raise SystemExit(f"mutation {mutation.name}: its old text is found {found} times in {mutation.file}, "
-                         f"not once (the code moved; update the patch):\n{mutation.old}")
-    path.write_text(text.replace(mutation.old, mutation.new))
+def apply(mutation: Mutation, copy: Path) -> str:
+    """Apply the one patch of `mutation` whose old text is found exactly once in its file; returns that file.
+    Stops the script when none or several apply (the code moved: update the patch)."""
+    patches = ((mutation.file, mutation.old, mutation.new), *mutation.alternatives)
+    found = [(f, old, new) for f, old, new in patches
+             if (copy / f).exists() and (copy / f).read_text().count(old) == 1]
+    if len(found) != 1:
+        raise SystemExit(f"mutation {mutation.name}: {len(found)} of its {len(patches)} patches apply, not one "
+                         f"(the code moved; update the patch): {mutation.old!r} in {mutation.file}")
+    file, old, new = found[0]
+    path = copy / file
+    path.write_text(path.read_text().replace(old, new))
+    return file
 
 
 def environment(copy: Path) -> dict:
@@ -199,18 +213,18 @@ def main(argv=None) -> int:
         rows = []
         for m in chosen:
             copy = make_copy(Path(tmp) / m.name)
-            apply(m, copy)
+            file = apply(m, copy)
             t0 = time.perf_counter()
             caught, last = run_tests(copy, m.tests)
-            rows.append((m, caught))
+            rows.append((m, file, caught))
             print(f"{m.name}: {'caught by ' + ', '.join(map(short, caught)) if caught else 'NOT CAUGHT'} "
                   f"({time.perf_counter() - t0:.0f} s; {last})", flush=True)
             shutil.rmtree(copy)
     print("\n| mutation | what it breaks | file | caught by (tests run: the listed files) |")
     print("|---|---|---|---|")
-    for m, caught in rows:
-        print(f"| {m.name} | {m.what} | {m.file} | {'<br>'.join(map(short, caught)) or '**NOT CAUGHT**'} |")
-    return 0 if not failed and all(caught for _, caught in rows) else 1
+    for m, file, caught in rows:
+        print(f"| {m.name} | {m.what} | {file} | {'<br>'.join(map(short, caught)) or '**NOT CAUGHT**'} |")
+    return 0 if not failed and all(caught for *_, caught in rows) else 1
 
 
 if __name__ == "__main__":
