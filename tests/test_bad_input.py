@@ -16,14 +16,13 @@ from pathlib import Path
 import numpy as np
 import pytest
 import torch
-from hydra import compose, initialize_config_module
+from conftest import compose_run
 from omegaconf import OmegaConf, open_dict
 from safetensors.torch import save_file
 from test_resume import SMALL, cli
 
 from distillrun import cli as cli_module
 from distillrun import pipeline
-from distillrun.config import register_configs
 from distillrun.recorder import Recorder
 
 
@@ -32,9 +31,7 @@ GROUPS = ("data", "net", "teacher", "method", "stop", "tracking", "compute")
 
 @functools.lru_cache(maxsize=None)
 def _composed(groups: tuple[str, ...]):
-    register_configs()
-    with initialize_config_module("distillrun.configs", version_base="1.3"):
-        return compose("run", overrides=[*SMALL, *groups])
+    return compose_run(*SMALL, *groups)
 
 
 def compose_cfg(tmp_path, *overrides):

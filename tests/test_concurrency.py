@@ -5,7 +5,9 @@ Outside references: SQLite's locking (one writer at a time; a writer that waits 
 The store is new, so both processes also race to create its tables (MLflow's schema migration), which is
 what `distillrun -m ...` does on a first sweep with the default store.
 """
+import contextlib
 import os
+import sqlite3
 import subprocess
 import sys
 
@@ -37,33 +39,47 @@ def test_two_runs_at_once_into_one_new_store_keep_every_record(tmp_path):
     assert os.path.exists(tmp_path / ".store.db.lock")  # how the table creation was serialised
 
 
-class Flaky:
-    """Fails with SQLite's lock error `fails` times, then answers."""
+def test_locked_store_is_retried_then_reported_in_one_line(tmp_path, monkeypatch):
+    # A really locked SQLite file: a connection holding BEGIN EXCLUSIVE keeps every other connection from
+    # writing, and a writer that will not wait (Python's sqlite3, timeout=0) gets SQLite's own
+    # "database is locked" (https://www.sqlite.org/lockingv3.html, https://www.sqlite.org/lang_transaction.html).
+    path = tmp_path / "store.db"
+    with contextlib.closing(sqlite3.connect(path)) as setup:
+        setup.execute("CREATE TABLE metrics (value REAL)")
+        setup.commit()
+    holder = sqlite3.connect(path, isolation_level=None)
+    holder.execute("BEGIN EXCLUSIVE")
 
-    def __init__(self, fails: int):
-        self.fails, self.calls = fails, 0
+    def write(table="metrics"):
+        with contextlib.closing(sqlite3.connect(path, timeout=0)) as con, con:
+            con.execute(f"INSERT INTO {table} VALUES (1.0)")
 
-    def __call__(self):
-        self.calls += 1
-        if self.calls <= self.fails:
-            raise RuntimeError("(sqlite3.OperationalError) database is locked")
-        return "ok"
+    def rows():
+        with contextlib.closing(sqlite3.connect(path, timeout=5)) as con:
+            return con.execute("SELECT COUNT(*) FROM metrics").fetchone()[0]
 
+    sleeps, release_at = [], [3]
 
-def test_locked_store_is_retried_then_reported_in_one_line(monkeypatch):
-    monkeypatch.setattr(tracking.time, "sleep", lambda s: None)
-    tracker = tracking.Tracker(None, "sqlite:///x.db", "0")
-    flaky = Flaky(tracking.LOCKED_RETRIES)
-    assert tracker._call("log", flaky) == "ok" and flaky.calls == tracking.LOCKED_RETRIES + 1
-    stuck = Flaky(10**6)
+    def sleep(seconds):  # the back-off; the lock holder commits during the third one (first part only)
+        sleeps.append(seconds)
+        if len(sleeps) in release_at:
+            holder.execute("COMMIT")
+    monkeypatch.setattr(tracking.time, "sleep", sleep)
+    tracker = tracking.Tracker(None, f"sqlite:///{path}", "0")
+    tracker._call("log", write)
+    assert len(sleeps) == 3 and rows() == 1  # retried while locked, written once the lock was gone
+
+    holder.execute("BEGIN EXCLUSIVE")  # now held for good: every retry fails, then one line reports it
+    sleeps.clear()
+    release_at.clear()
     with pytest.raises(tracking.TrackingError, match="log failed .*database is locked") as e:
-        tracker._call("log", stuck)
-    assert stuck.calls == tracking.LOCKED_RETRIES + 1 and "\n" not in str(e.value)
-    calls = []
+        tracker._call("log", write)
+    assert len(sleeps) == tracking.LOCKED_RETRIES and "\n" not in str(e.value)
+    holder.execute("ROLLBACK")
+    holder.close()
+    assert rows() == 1  # the refused writes left nothing behind
 
-    def other_error():
-        calls.append(1)
-        raise RuntimeError("no such table: runs")
-    with pytest.raises(tracking.TrackingError, match="no such table"):
-        tracker._call("log", other_error)
-    assert calls == [1]  # any other error is reported at once, not retried
+    sleeps.clear()  # any other SQLite error is reported at once, not retried
+    with pytest.raises(tracking.TrackingError, match="no such table: runs"):
+        tracker._call("log", write, "runs")
+    assert sleeps == []

@@ -310,3 +310,80 @@ def test_tuned_defaults_reach_low_nll_gap():
     for fewer, more in zip(nll, nll[1:]):
         diff = more - fewer
         assert float(diff.mean()) <= 2 * float(diff.std()) / math.sqrt(diff.numel())
+
+
+# ------------------------------------------------------------- the loss against Song et al. 2023, Alg. 2
+class RecordingF(torch.nn.Module):
+    """A stand-in consistency function f(x, sigma) = w x / (1 + sigma) (any fixed map serves) that keeps the
+    inputs of every call, so the test sees where the loss evaluates the model and the target network."""
+
+    def __init__(self):
+        super().__init__()
+        self.w = torch.nn.Parameter(torch.ones((), dtype=torch.float64))
+        self.calls = []
+
+    def forward(self, x, sigma, cond=None):
+        sigma = torch.as_tensor(sigma, dtype=torch.float64).expand(x.shape[0])
+        self.calls.append((x.detach().clone(), sigma.detach().clone()))
+        return self.w * x / (1 + sigma[:, None])
+
+
+def _alg2_reference(x0, x_next, n, grid, m, s, solver, weighting, distance, c):
+    """Song et al. 2023, Alg. 2, transcribed with the exact VE denoiser of N(m, s^2 I) data,
+    D(x, sigma) = m + s^2 / (s^2 + sigma^2) (x - m) (Bishop 2006, Eq. 2.116 with x = x0 + sigma z):
+      x_hat = x_{n+1} + (sigma_n - sigma_{n+1}) Phi, Phi the Euler or Heun slope of dx/dsigma = (x - D) / sigma
+              (Karras et al. 2022, Eq. 3 and Alg. 1, lines 5-7);
+      L = mean lambda(sigma_n) d(f(x_{n+1}, sigma_{n+1}), f^-(x_hat, sigma_n)), lambda = 1 or
+      1 / (sigma_{n+1} - sigma_n) (Song & Dhariwal 2023, Sec. 3.4; here divided by its grid mean, a constant),
+      d = |.|^2 or pseudo-Huber sqrt(|.|^2 + c^2) - c (Song & Dhariwal 2023, Sec. 3.3).
+    Returns (x_hat, loss); grid ascending (sigma_1 = sigma_min), n 0-based interval indices."""
+    lo, hi = grid[n][:, None], grid[n + 1][:, None]
+    slope = lambda x, sig: (x - (m + s**2 / (s**2 + sig**2) * (x - m))) / sig  # noqa: E731
+    d = slope(x_next, hi)
+    x_hat = x_next + (lo - hi) * d
+    if solver == "heun":
+        x_hat = x_next + (lo - hi) * 0.5 * (d + slope(x_hat, lo))
+    f = lambda x, sig: x / (1 + sig)  # noqa: E731  the RecordingF map with w = 1
+    sq = (f(x_next, hi) - f(x_hat, lo)).pow(2).sum(1)
+    dist = sq if distance == "l2" else torch.sqrt(sq + c * c) - c
+    gaps = grid[1:] - grid[:-1]
+    lam = torch.ones_like(gaps) if weighting == "uniform" else (1 / gaps) / (1 / gaps).mean()
+    return x_hat, (lam[n] * dist).mean()
+
+
+@pytest.mark.parametrize("solver,weighting,distance", [("heun", "inverse_gap", "pseudo_huber"),
+                                                       ("euler", "uniform", "l2")])
+def test_loss_follows_song_2023_algorithm_2(solver, weighting, distance):
+    m, s, batch = torch.tensor([0.3, -0.2], dtype=torch.float64), 0.5, 6000
+    cfg = dataclasses.replace(ConsistencyConfig(), grid_points=6, sigma_max=20.0, ode_solver=solver,
+                              weighting=weighting, distance=distance)
+    teacher = GaussianDenoiser(m, s, Schedule("cosine"))
+    x0 = m + s * torch.randn(batch, 2, dtype=torch.float64, generator=torch.Generator().manual_seed(0))
+    model, target = RecordingF(), RecordingF()
+    loss = consistency_loss(teacher, cfg, s, 2)(model, target, (x0, None), torch.Generator().manual_seed(1))
+    assert len(model.calls) == 1 and len(target.calls) == 1
+    (x_next, sig_next), (x_hat, sig_hat) = model.calls[0], target.calls[0]
+    # The grid: Karras et al. 2022, Eq. 5 in numpy, ascending as in Song et al. 2023 (sigma_1 = sigma_min).
+    i = np.arange(cfg.grid_points)
+    eq5 = (cfg.sigma_max ** (1 / cfg.rho) + i / (cfg.grid_points - 1) *
+           (cfg.sigma_min ** (1 / cfg.rho) - cfg.sigma_max ** (1 / cfg.rho))) ** cfg.rho
+    grid = torch.from_numpy(eq5[::-1].copy())
+    # n ~ U{1, ..., N-1}: the model sees sigma_{n+1}, one of the N-1 upper grid points, each as often
+    # (scipy.stats.chisquare against the uniform counts).
+    upper = (sig_next[:, None] - grid[None, 1:]).abs().argmin(1)
+    torch.testing.assert_close(sig_next, grid[1:][upper], rtol=1e-12, atol=0)
+    counts = np.bincount(upper.numpy(), minlength=cfg.grid_points - 1)
+    assert (counts > 0).all(), counts  # every interval, the lowest one too
+    assert stats.chisquare(counts).pvalue > 1e-4, counts
+    n = upper  # 0-based interval index: sigma_n = grid[n], sigma_{n+1} = grid[n + 1]
+    # x_{n+1} = x0 + sigma_{n+1} z with z ~ N(0, I) (scipy.stats.kstest on the recovered z).
+    z = (x_next - x0) / sig_next[:, None]
+    assert stats.kstest(z.ravel().numpy(), "norm").pvalue > 1e-4
+    # The target network at (x_hat, sigma_n), x_hat one teacher step down from sigma_{n+1}; the loss value.
+    torch.testing.assert_close(sig_hat, grid[n], rtol=1e-12, atol=0)
+    expect_x_hat, expect_loss = _alg2_reference(x0, x_next, n, grid, m, s, solver, weighting, distance,
+                                                huber_c_for(cfg, 2))
+    torch.testing.assert_close(x_hat, expect_x_hat, rtol=1e-6, atol=1e-8)
+    torch.testing.assert_close(loss.detach(), expect_loss, rtol=1e-6, atol=1e-10)
+    loss.backward()  # the gradient reaches the model only (the target is a stop-gradient copy, Alg. 2)
+    assert model.w.grad is not None and target.w.grad is None

@@ -6,18 +6,17 @@ the one data parallelism promises (e.g. PyTorch DDP notes, "DDP ... equivalent t
 training with the global batch"): W ranks with 1/W of the batch each take the same step as one process.
 """
 import os
-import shutil
 import subprocess
 import sys
 
 import pytest
 import torch
-from hydra import compose, initialize_config_module
+from conftest import TINY as TINY_SIZES, compose_run
 from omegaconf import open_dict
 from safetensors.torch import load_file
 
 from distillrun import distributed
-from distillrun.config import ConfigError, register_configs, validate
+from distillrun.config import ConfigError, validate
 from distillrun.data.mixture import archipelago
 from distillrun.denoiser import NetDenoiser
 from distillrun.methods import teacher as teacher_method
@@ -26,20 +25,20 @@ from distillrun.nets import build_net
 from distillrun.nets.oracle import OracleDenoiser
 from distillrun.schedule import Schedule
 
-TINY = ["teacher.iterations=60", "teacher.steps=4", "method.iterations=20", "eval.samples=256", "eval.bootstrap=5",
-        "eval.projections=16", "compute.threads=1", "quiet=true", "data.n_train=4096", "net.width=32",
-        "net.depth=2", "stop.tolerance=1000"]
+TINY = ["teacher.iterations=60", "teacher.steps=4", "method.iterations=20", *TINY_SIZES, "stop.tolerance=1000"]
 ENV = {**os.environ, "OMP_NUM_THREADS": "1", "MLFLOW_DISABLE_TELEMETRY": "true"}
+# torchrun's own entry point, run by this interpreter: the test needs no `torchrun` script on PATH (a venv's
+# python called without activating the venv has none), only torch itself.
+TORCHRUN = (sys.executable, "-m", "torch.distributed.run", "--standalone", "--nproc_per_node=2", "-m", "distillrun.cli")
 
 
 def cli(*args, cwd, launcher=(sys.executable, "-m", "distillrun.cli")):
     return subprocess.run([*launcher, *args], cwd=cwd, env=ENV, capture_output=True, text=True, timeout=600)
 
 
-@pytest.mark.skipif(shutil.which("torchrun") is None, reason="torchrun not on PATH")
 def test_two_gloo_ranks_train_the_same_student_as_one_process(tmp_path):
     two = cli(*TINY, "tracking=off", f"run_dir={tmp_path / 'two'}", cwd=tmp_path,
-              launcher=("torchrun", "--standalone", "--nproc_per_node=2", "-m", "distillrun.cli"))
+              launcher=TORCHRUN)
     assert two.returncode == 0, two.stderr[-2000:]
     one = cli(*TINY, "tracking=off", f"run_dir={tmp_path / 'one'}", cwd=tmp_path)
     assert one.returncode == 0, one.stderr[-2000:]
@@ -53,7 +52,7 @@ def test_two_gloo_ranks_train_the_same_student_as_one_process(tmp_path):
     # Resume under torchrun: a rerun on the finished folder loads every stage on both ranks and changes nothing.
     before = (tmp_path / "two" / "summary.json").read_text()
     again = cli(*TINY, "tracking=off", f"run_dir={tmp_path / 'two'}", cwd=tmp_path,
-                launcher=("torchrun", "--standalone", "--nproc_per_node=2", "-m", "distillrun.cli"))
+                launcher=TORCHRUN)
     assert again.returncode == 0, again.stderr[-2000:]
     assert (tmp_path / "two" / "summary.json").read_text() == before
 
@@ -115,10 +114,7 @@ def test_sweep_over_two_tolerances_gives_two_pipelines_in_mlflow(tmp_path):
 @pytest.mark.parametrize("launcher,target", [("slurm", "SlurmLauncher"), ("parallel", "JoblibLauncher")])
 def test_launcher_templates_compose_and_validate(launcher, target):
     pytest.importorskip(f"hydra_plugins.hydra_{'submitit' if launcher == 'slurm' else 'joblib'}_launcher")
-    register_configs()
-    with initialize_config_module("distillrun.configs", version_base="1.3"):
-        cfg = compose("run", overrides=[f"hydra/launcher={launcher}", "recipe=digits_progressive"],
-                      return_hydra_config=True)
+    cfg = compose_run(f"hydra/launcher={launcher}", "recipe=digits_progressive", return_hydra_config=True)
     assert cfg.hydra.launcher._target_.endswith(target)
     if launcher == "slurm":
         assert cfg.hydra.launcher.tasks_per_node == cfg.hydra.launcher.gpus_per_node  # one rank per GPU
@@ -130,10 +126,8 @@ def test_launcher_templates_compose_and_validate(launcher, target):
 def test_torchrun_needs_a_shared_run_dir_and_divisible_batches(monkeypatch):
     from distillrun.cli import join_ranks
 
-    register_configs()
     monkeypatch.setenv("WORLD_SIZE", "3")
-    with initialize_config_module("distillrun.configs", version_base="1.3"):
-        with pytest.raises(ConfigError, match="run_dir"):
-            join_ranks(compose("run"))
-        with pytest.raises(ConfigError, match="teacher.batch_size"):
-            join_ranks(compose("run", overrides=["run_dir=/tmp/x"]))
+    with pytest.raises(ConfigError, match="run_dir"):
+        join_ranks(compose_run())
+    with pytest.raises(ConfigError, match="teacher.batch_size"):
+        join_ranks(compose_run("run_dir=/tmp/x"))

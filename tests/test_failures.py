@@ -12,19 +12,16 @@ from contextlib import redirect_stderr
 
 import pytest
 import torch
-from hydra import compose, initialize_config_module
+from conftest import compose_run
 from test_resume import SMALL, cli, fresh_store, mlflow_runs
 
 from distillrun import checkpoint, cli as cli_module
-from distillrun.config import register_configs
 from distillrun.methods import progressive
 from distillrun.training import LoopSpec, train_loop
 
 
 def compose_cfg(*overrides):
-    register_configs()
-    with initialize_config_module("distillrun.configs", version_base="1.3"):
-        return compose("run", overrides=[*SMALL, *overrides])
+    return compose_run(*SMALL, *overrides)
 
 
 def run_job(cfg) -> tuple[int, list[str]]:

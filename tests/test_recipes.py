@@ -14,11 +14,11 @@ from pathlib import Path
 import numpy as np
 import pytest
 import torch
-from hydra import compose, initialize_config_module
+from conftest import compose_run
 from safetensors.torch import load_file, save_file
 
 from distillrun import cli, verbs
-from distillrun.config import ConfigError, register_configs, validate
+from distillrun.config import ConfigError, validate
 
 os.environ.setdefault("MLFLOW_DISABLE_TELEMETRY", "true")
 RECIPES = verbs.recipe_names()
@@ -56,9 +56,7 @@ def build_teacher(width=16):
 
 
 def compose_recipe(name, *extra):
-    register_configs()
-    with initialize_config_module("distillrun.configs", version_base="1.3"):
-        return compose("run", overrides=[f"recipe={name}", *extra])
+    return compose_run(f"recipe={name}", *extra)
 
 
 @pytest.fixture
@@ -117,9 +115,7 @@ def test_own_recipes_name_the_missing_key(name, given, key, user_files):
 
 @pytest.mark.parametrize("method", ["progressive", "consistency"])
 def test_both_methods_share_teacher_experiment_and_sweep_folder(method):
-    register_configs()
-    with initialize_config_module("distillrun.configs", version_base="1.3"):
-        cfg = compose("run", overrides=["recipe=archipelago_both", f"method={method}"], return_hydra_config=True)
+    cfg = compose_run("recipe=archipelago_both", f"method={method}", return_hydra_config=True)
     validate(cfg)
     assert cfg.method.name == method and cfg.teacher.source == "oracle"
     assert cfg.tracking.experiment == "archipelago-both"

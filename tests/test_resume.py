@@ -15,14 +15,13 @@ import sys
 from pathlib import Path
 
 import pytest
+from conftest import TINY, compose_run
 
 from distillrun import checkpoint
 
-os.environ.setdefault("MLFLOW_DISABLE_TELEMETRY", "true")
 # 3 progressive stages (8 -> 4 -> 2 -> 1 steps), a resume point every 10 iterations, one torch thread.
 SMALL = ["teacher.iterations=60", "teacher.warmup=10", "teacher.steps=8", "method.iterations=20",
-         "checkpoint_every=10", "eval.samples=256", "eval.bootstrap=5", "eval.projections=16", "compute.threads=1",
-         "quiet=true", "data.n_train=4096", "net.width=32", "net.depth=2", "stop.tolerance=1000"]
+         "checkpoint_every=10", *TINY, "stop.tolerance=1000"]
 ENV = {**os.environ, "OMP_NUM_THREADS": "1", "MLFLOW_DISABLE_TELEMETRY": "true", "PYTHONWARNINGS": "ignore"}
 
 
@@ -49,16 +48,11 @@ def fresh_store(tmp_path_factory, folder: Path) -> str:
 
 def reference_run(tmp_path_factory, extra=()):
     """The same run uninterrupted and in-process (same seed, one thread): the result a resume must equal."""
-    from hydra import compose, initialize_config_module
-
     from distillrun import pipeline
-    from distillrun.config import register_configs
     from distillrun.recorder import recorder_for
 
     folder = tmp_path_factory.mktemp("reference")
-    register_configs()
-    with initialize_config_module("distillrun.configs", version_base="1.3"):
-        cfg = compose("run", overrides=[*SMALL, *extra, f"run_dir={folder / 'run'}", "tracking.enabled=false"])
+    cfg = compose_run(*SMALL, *extra, f"run_dir={folder / 'run'}", "tracking.enabled=false")
     with recorder_for(cfg) as rec:
         pipeline.run(cfg, rec)
     return folder / "run"

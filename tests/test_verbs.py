@@ -14,26 +14,22 @@ import matplotlib.image as mpimg
 import numpy as np
 import pytest
 import torch
-from hydra import compose, initialize_config_module
+from conftest import TINY as TINY_SIZES, compose_run
 from omegaconf import OmegaConf
 from safetensors.torch import load_file
 
 from distillrun import cli, evaluate, pipeline, verbs
-from distillrun.config import register_configs
 from distillrun.denoiser import NetDenoiser
 from distillrun.nets.mlp import TimeMLP
 from distillrun.samplers import sample, uniform_grid
 from distillrun.schedule import Schedule
 
-TINY = ["teacher.iterations=60", "method.iterations=10", "eval.samples=256", "eval.bootstrap=5", "teacher.steps=8",
-        "eval.projections=16", "compute.threads=1", "tracking=off", "quiet=true", "data.n_train=4096", "net.width=32",
-        "net.depth=2", "stop.tolerance=100"]  # a loose tolerance: every stage is within, so there is a chosen student
+TINY = ["teacher.iterations=60", "method.iterations=10", "teacher.steps=8", "tracking=off", *TINY_SIZES,
+        "stop.tolerance=100"]  # a loose tolerance: every stage is within, so there is a chosen student
 
 
 def make_run(folder, *extra):
-    register_configs()
-    with initialize_config_module("distillrun.configs", version_base="1.3"):
-        cfg = compose("run", overrides=[*TINY, *extra, f"run_dir={folder}"])
+    cfg = compose_run(*TINY, *extra, f"run_dir={folder}")
     assert cli.run_job(cfg) == 0
     return folder
 
