@@ -360,7 +360,7 @@ def test_loss_follows_song_2023_algorithm_2(solver, weighting, distance):
     teacher = GaussianDenoiser(m, s, Schedule("cosine"))
     x0 = m + s * torch.randn(batch, 2, dtype=torch.float64, generator=torch.Generator().manual_seed(0))
     model, target = RecordingF(), RecordingF()
-    loss = consistency_loss(teacher, cfg, s, 2)(model, target, (x0, None), torch.Generator().manual_seed(1))
+    loss = consistency_loss(teacher, cfg, 2)(model, target, (x0, None), torch.Generator().manual_seed(1))
     assert len(model.calls) == 1 and len(target.calls) == 1
     (x_next, sig_next), (x_hat, sig_hat) = model.calls[0], target.calls[0]
     # The grid: Karras et al. 2022, Eq. 5 in numpy, ascending as in Song et al. 2023 (sigma_1 = sigma_min).
