@@ -109,15 +109,18 @@ class EvalConfig:
 class StopConfig:
     metric: str = "panel"  # panel (the metrics in stop.panel together) or one metric of metric_props.METRIC_PROPS
     mode: str = "relative"  # one metric: relative: q <= q_teacher (1 + tolerance) | absolute: q <= q_teacher + tolerance
-    tolerance: float = 0.25  # one metric: relative: 25% worse than the teacher at full steps
+    # None: the rule's default -- panel: 0.02, a share of points (the student may lose 2% of the points more than
+    # the teacher: samples off the data, data left uncovered); one metric, relative: 0.25 (25% worse than the teacher)
+    tolerance: Optional[float] = None
     z: float = 2.0  # a stage is over tolerance only when q - z * se is still beyond the limit
-    # panel: metric -> absolute tolerance, the worsening against the teacher accepted (shares of points; see README)
-    panel: dict[str, float] = field(default_factory=lambda: dict(PANEL_DEFAULT))
+    panel: list[str] = field(default_factory=lambda: list(PANEL_DEFAULT))  # share metrics judged together
 
 
 # The default panel (README "Choosing the stop rule"; benchmarks/calibration.py): precision falls when samples leave
-# the data manifold, coverage when modes drop; 0.02 = 2% of the points more than the teacher loses.
-PANEL_DEFAULT = {"precision": 0.02, "coverage": 0.02}
+# the data manifold, coverage when modes drop.
+PANEL_DEFAULT = ("precision", "coverage")
+PANEL_TOLERANCE = 0.02
+RELATIVE_TOLERANCE = 0.25
 
 
 @dataclass
@@ -236,8 +239,8 @@ def validate(cfg: DictConfig) -> None:
     _validate_method(cfg)
     images = cfg.data.name in DATASETS_IMAGES or cfg.data.name == "image_folder"
     _validate_stop(cfg, images)
-    if not (cfg.stop.tolerance > 0 and math.isfinite(cfg.stop.tolerance)):
-        raise ConfigError("stop.tolerance", cfg.stop.tolerance, "must be a finite number > 0")
+    if cfg.stop.tolerance is not None and not (cfg.stop.tolerance > 0 and math.isfinite(cfg.stop.tolerance)):
+        raise ConfigError("stop.tolerance", cfg.stop.tolerance, "must be a finite number > 0 (or null: the default)")
     if not (math.isfinite(cfg.stop.z) and cfg.stop.z >= 0):
         raise ConfigError("stop.z", cfg.stop.z, "must be a finite number >= 0")
     if cfg.eval.detect is not None and not (math.isfinite(cfg.eval.detect) and cfg.eval.detect > 0):
@@ -258,17 +261,18 @@ def _validate_stop(cfg: DictConfig, images: bool) -> None:
     usable = [m for m in stop_metrics() if available(m, images, known_density)]
     _one_of("stop.metric", cfg.stop.metric, ["panel"] + usable)
     if cfg.stop.metric == "panel":
+        shares = [m for m in usable if METRIC_PROPS[m].share]
         if not cfg.stop.panel:
-            raise ConfigError("stop.panel", dict(cfg.stop.panel), f"needs at least one metric of {', '.join(usable)}")
-        for m, tol in cfg.stop.panel.items():
-            _one_of(f"stop.panel.{m}", m, usable)
-            if tol is None or not (tol > 0 and math.isfinite(tol)):
-                raise ConfigError(f"stop.panel.{m}", tol, "must be a finite number > 0 (an absolute tolerance)")
+            raise ConfigError("stop.panel", list(cfg.stop.panel), f"needs at least one metric of {', '.join(shares)}")
+        for m in cfg.stop.panel:
+            _one_of("stop.panel", m, shares)
         return
     _one_of("stop.mode", cfg.stop.mode, ("relative", "absolute"))
     if cfg.stop.mode == "relative" and METRIC_PROPS[cfg.stop.metric].signed:
         raise ConfigError("stop.mode", "relative", f"stop.metric={cfg.stop.metric} hovers around 0 and can go "
                           "negative; use stop=absolute (stop.mode=absolute)")
+    if cfg.stop.mode == "absolute" and cfg.stop.tolerance is None:
+        raise ConfigError("stop.tolerance", None, f"stop.mode=absolute needs a tolerance in units of {cfg.stop.metric}")
 
 
 def _validate_method(cfg: DictConfig) -> None:

@@ -16,7 +16,8 @@ class MetricProps:
     signed: bool = False  # hovers around 0 and can go negative: judged by an absolute tolerance only
     log_scale: bool = False  # plotted on a log axis (a positive distance spanning decades)
     stop_metric: bool = True  # may decide the stop rule (has a standard error and a teacher value)
-    higher_better: bool = False  # a share of points that falls when quality is lost (the stop rule's limit is below)
+    higher_better: bool = False  # falls when quality is lost (the stop rule's limit lies below the teacher's value)
+    share: bool = False  # a share of points (0..1): may sit in the stop panel, whose one tolerance is a share
 
 
 METRIC_PROPS: dict[str, MetricProps] = {
@@ -24,14 +25,14 @@ METRIC_PROPS: dict[str, MetricProps] = {
     "mmd2": MetricProps("unbiased MMD^2, RBF kernel at the median bandwidth", signed=True),
     "mmd2_div4": MetricProps("unbiased MMD^2, RBF kernel at a quarter of the median bandwidth", signed=True),
     "mmd2_div16": MetricProps("unbiased MMD^2, RBF kernel at 1/16 of the median bandwidth", signed=True),
-    "precision": MetricProps("share of samples inside the 5-NN ball of some data point (on the data manifold)",
+    "precision": MetricProps(share=True, meaning="share of samples inside the 5-NN ball of some data point (on the data manifold)",
                              higher_better=True),
-    "recall": MetricProps("share of data points inside the 5-NN ball of some sample", higher_better=True),
+    "recall": MetricProps(share=True, meaning="share of data points inside the 5-NN ball of some sample", higher_better=True),
     "density": MetricProps("data 5-NN balls holding each sample, averaged, over 5 (1 for exact samples)",
                            higher_better=True),
-    "coverage": MetricProps("share of data points whose 5-NN ball holds a sample (falls when modes drop)",
+    "coverage": MetricProps(share=True, meaning="share of data points whose 5-NN ball holds a sample (falls when modes drop)",
                             higher_better=True),
-    "c2st": MetricProps("held-out accuracy of a k-NN classifier telling samples from data (0.5: indistinguishable)"),
+    "c2st": MetricProps(share=True, meaning="held-out accuracy of a k-NN classifier telling samples from data (0.5: indistinguishable)"),
     "fd": MetricProps("Frechet distance in the feature space of image data", images_only=True, log_scale=True),
     "nll_gap": MetricProps("mean -log p(sample) minus the entropy of p, in nats", needs_density=True, signed=True),
     "mode_tv": MetricProps("total variation of the share of samples per mode", needs_density=True,

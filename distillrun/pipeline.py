@@ -153,12 +153,11 @@ def evaluation_size(cfg, data, run_dir: Path | None = None) -> int:
     pilot = evaluate.make_bench(data, n0, cfg.eval.projections, cfg.eval.bootstrap, cfg.eval.seed + 7,
                                 cond_needed=False)
     q = evaluate.quality(pilot, pilot.floor_set)
-    need = 512
+    n = 512
     for m in stopping.rule_metrics(cfg.stop):
         se = q.get(f"{m}_se", math.nan)
         if math.isfinite(se) and se > 0:
-            need = max(need, n0 * (cfg.stop.z * math.sqrt(2) * se / cfg.eval.detect) ** 2)
-    n = int(math.ceil(need / 256) * 256)
+            n = max(n, stopping.samples_for(n0, cfg.stop.z * math.sqrt(2) * se, cfg.eval.detect))
     print(f"eval.detect={cfg.eval.detect:g}: evaluating on {n} samples (pilot at {n0})", flush=True)
     return n
 
@@ -334,9 +333,10 @@ def summarize(cfg, stages, records, reference, run_dir: Path) -> dict:
     summary = {"method": cfg.method.name, "stop_rule": cfg.stop.metric,
                # the metric that decided the last judged stage (tables and plots show it); the rule's own, if one
                "stop_metric": judged[-1]["decided_by"] if judged else stopping.rule_metrics(cfg.stop)[0],
-               "panel": dict(cfg.stop.panel) if cfg.stop.metric == stopping.PANEL else None,
-               "tolerance": cfg.stop.tolerance, "mode": cfg.stop.mode, "z": cfg.stop.z,
-               "power_warnings": stopping.power_warnings(reference["teacher"], cfg.stop, reference.get("samples", 0)), "reference": reference, "stages": records, "stopped_because": why,
+               "panel": list(cfg.stop.panel) if cfg.stop.metric == stopping.PANEL else None,
+               "tolerance": stopping.tolerance_of(cfg.stop), "mode": cfg.stop.mode, "z": cfg.stop.z,
+               "power_warnings": stopping.power_warnings(reference["teacher"], cfg.stop, reference.get("samples", 0)),
+               "reference": reference, "stages": records, "stopped_because": why,
                "chosen": None if chosen is None else {"index": chosen["index"], "steps": chosen["steps"],
                                                       "folder": f"stage-{chosen['index']:02d}"},
                "failed": bool(last and last["verdict"] == stopping.FAILED)}

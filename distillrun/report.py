@@ -154,9 +154,8 @@ def rule_text(summary: dict) -> str:
     """One line: what the stop rule allows."""
     z = summary.get("z", math.nan)
     if summary.get("panel"):
-        parts = ", ".join(f"{m} {'-' if _higher_better(m) else '+'}{t:g}" for m, t in summary["panel"].items())
-        return (f"over when any metric is worse than the teacher's by more than its tolerance ({parts}) plus "
-                f"{z:g} se; seen = (worsening against the teacher) / se")
+        return (f"over when any of {', '.join(summary['panel'])} is worse than the teacher's by more than "
+                f"{summary['tolerance']:g} (a share of points) plus {z:g} se; seen = (worsening against the teacher) / se")
     return (f"{summary['stop_metric']} {summary.get('mode', '')} tolerance {summary.get('tolerance', math.nan):g}, "
             f"z={z:g}; seen = (worsening against the teacher) / se")
 

@@ -9,9 +9,9 @@ One metric (stop.metric = a metric name):
 A stage is 'over' only when the value is beyond the limit by more than z * se, se = sqrt(se_student^2 +
 se_teacher^2), so sampling noise alone does not stop a run; the NLL gap is compared by its size |q|.
 
-A panel (stop.metric = panel): several metrics, each with its own absolute tolerance (stop.panel). The stage is
-over when any metric is over; the verdict names the metric that decided: the one furthest over its limit, or,
-when all are within, the one closest to its limit (margins in units of each metric's tolerance).
+A panel (stop.metric = panel): several share metrics (stop.panel; shares of points, 0..1), each judged with the one
+absolute tolerance stop.tolerance (a share of points). The stage is over when any metric is over; the verdict names
+the metric that decided: the one furthest over its limit, or, when all are within, the one closest to its limit.
 
 Every judged metric also carries `seen`: the student's worsening against the teacher in units of the combined
 standard error ((q - q_teacher) / se, sign turned so that > 0 is worse). seen >= 3 means the evaluation sees the
@@ -71,31 +71,38 @@ def judge(quality: dict, teacher: dict, metric: str, tolerance: float, mode: str
                    detectable=z * se)
 
 
-def judge_panel(quality: dict, teacher: dict, panel: dict, z: float) -> Verdict:
-    """Verdict over several metrics, each judged with its absolute tolerance panel[metric]; names the decider."""
+def judge_panel(quality: dict, teacher: dict, panel, tolerance: float, z: float) -> Verdict:
+    """Verdict over several share metrics, each judged with the absolute tolerance `tolerance`; names the decider."""
+    panel = list(panel)
     if not panel:
         raise ValueError("the panel holds no metric")
-    verdicts = {m: judge(quality, teacher, m, float(tol), "absolute", z) for m, tol in panel.items()}
+    verdicts = {m: judge(quality, teacher, m, tolerance, "absolute", z) for m in panel}
     failed = [m for m, v in verdicts.items() if v.verdict == FAILED]
-    if failed:
-        decider = failed[0]
-    else:  # the smallest margin in units of the metric's own tolerance: furthest over, or closest to its limit
-        decider = min(verdicts, key=lambda m: verdicts[m].margin / float(panel[m]))
+    # the decider: a failed metric, else the smallest margin: the furthest over, or the closest to its limit
+    decider = failed[0] if failed else min(verdicts, key=lambda m: verdicts[m].margin)
     d = verdicts[decider]
     others = "; ".join(f"{m} {v.verdict} ({v.seen:+.1f} se)" for m, v in verdicts.items() if m != decider)
     reason = f"decided by {d.reason}" + (f" | {others}" if others else "")
     table = {m: {"verdict": v.verdict, "value": v.value, "teacher": teacher.get(m, math.nan), "limit": v.limit,
-                 "margin": v.margin, "seen": v.seen, "detectable": v.detectable, "tolerance": float(panel[m])}
-             for m, v in verdicts.items()}
+                 "margin": v.margin, "seen": v.seen, "detectable": v.detectable} for m, v in verdicts.items()}
     return Verdict(d.verdict, d.value, d.limit, d.margin, reason, metric=decider, seen=d.seen,
                    detectable=d.detectable, panel=table)
+
+
+def tolerance_of(stop) -> float:
+    """stop.tolerance, or the rule's default when it is null (panel: a share; one metric, relative: a fraction)."""
+    from .config import PANEL_TOLERANCE, RELATIVE_TOLERANCE
+
+    if stop.tolerance is not None:
+        return float(stop.tolerance)
+    return PANEL_TOLERANCE if stop.metric == PANEL else RELATIVE_TOLERANCE
 
 
 def judge_rule(quality: dict, teacher: dict, stop) -> Verdict:
     """The configured rule (a StopConfig or any object with metric, mode, tolerance, z and panel)."""
     if stop.metric == PANEL:
-        return judge_panel(quality, teacher, dict(stop.panel), stop.z)
-    return judge(quality, teacher, stop.metric, stop.tolerance, stop.mode, stop.z)
+        return judge_panel(quality, teacher, stop.panel, tolerance_of(stop), stop.z)
+    return judge(quality, teacher, stop.metric, tolerance_of(stop), stop.mode, stop.z)
 
 
 def rule_metrics(stop) -> list[str]:
@@ -107,21 +114,26 @@ def power_warnings(teacher: dict, stop, n: int) -> list[str]:
     """One line per judged metric whose tolerance is finer than what n evaluation samples can resolve: the smallest
     worsening told from noise at the rule's z is about z * sqrt(2) * se_teacher (the student's se taken equal to the
     teacher's), and a tolerance below it makes the effective limit tolerance + that amount."""
-    rules = {m: (stop.panel[m] if stop.metric == PANEL else stop.tolerance) for m in rule_metrics(stop)}
+    tol = tolerance_of(stop)
     lines = []
-    for m, tol in rules.items():
+    for m in rule_metrics(stop):
         se = teacher.get(f"{m}_se", math.nan)
         if not math.isfinite(se):
             continue
         detect = stop.z * math.sqrt(2) * se
-        unit = float(tol) * abs(teacher.get(m, math.nan)) if stop.metric != PANEL and stop.mode == "relative" \
-            else float(tol)
+        unit = tol * abs(teacher.get(m, math.nan)) if stop.metric != PANEL and stop.mode == "relative" else tol
         if detect > unit:
-            need = n * (detect / unit) ** 2
-            lines.append(f"stop rule: {m} tolerance {float(tol):g} is below the smallest difference eval.samples={n} "
-                         f"detects at z={stop.z:g} ({detect:.3g}); eval.samples of about {math.ceil(need)} would "
-                         f"resolve it (or set eval.detect)")
+            lines.append(f"stop rule: {m} tolerance {unit:.3g} is below the smallest difference eval.samples={n} "
+                         f"detects at z={stop.z:g} ({detect:.3g}); eval.samples={samples_for(n, detect, unit)} "
+                         f"would resolve it (or set eval.detect={unit:.3g})")
     return lines
+
+
+def samples_for(n: int, detectable: float, target: float) -> int:
+    """Evaluation size at which a difference `detectable` at n samples shrinks to `target`: a mean's se falls as
+    1/sqrt(n), so n (detectable / target)^2, rounded up to a multiple of 256 (at least 512)."""
+    need = n * (detectable / target) ** 2
+    return max(512, 256 * math.ceil(need / 256 - 1e-9))
 
 
 def choose(stages: list[dict]) -> dict | None:
