@@ -152,12 +152,15 @@ def test_default_draw_repeats_the_samples_the_stage_was_scored_on(runs, method, 
 def test_compare_prints_a_row_per_stage_and_writes_plots(runs, tmp_path, capsys):
     assert verbs.main("compare", [str(runs["progressive"]), str(runs["consistency"]), "--out", str(tmp_path)]) == 0
     out = capsys.readouterr().out
+    # the default metric: the first run's stop metric (the metric that decided its last judged stage)
+    metric = json.loads((runs["progressive"] / "summary.json").read_text())["stop_metric"]
+    assert f"{metric} ± se" in out
     for label, run in (("prog", runs["progressive"]), ("cons", runs["consistency"])):
         summary = json.loads((run / "summary.json").read_text())
         rows = [line.split() for line in out.splitlines() if line.startswith(label + " ")]
         assert [r[2] for r in rows] == ["teacher"] + [str(s["index"]) for s in summary["stages"]]
         for row, s in zip(rows[1:], summary["stages"]):
-            assert row[3] == str(s["steps"]) and row[4] == format(s["metrics"]["quality/sw2"], ".4g")
+            assert row[3] == str(s["steps"]) and row[4] == format(s["metrics"][f"quality/{metric}"], ".4g")
     for name in ("compare_quality.png", "compare_divergence.png", "compare_samples.png"):
         assert mpimg.imread(tmp_path / name).shape[0] > 100
 
