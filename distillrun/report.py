@@ -53,10 +53,11 @@ def outside(x: torch.Tensor, xlim: tuple, ylim: tuple) -> int:
     return int((~inside).sum())
 
 
-def sample_picture(x: torch.Tensor, bench, path: Path, title: str, teacher: torch.Tensor | None = None) -> None:
+def sample_picture(x: torch.Tensor, bench, path: Path, title: str, teacher: torch.Tensor | None = None,
+                   teacher_title: str = "teacher at full steps") -> None:
     """Scatter (2D: samples over the data, axes fitted to both; the title says how many samples fall outside) or
     image grid of a stage's samples. `teacher`: the teacher's samples at full steps, drawn in a panel beside."""
-    panels = [(x, title)] + ([(teacher, "teacher at full steps")] if teacher is not None else [])
+    panels = [(x, title)] + ([(teacher, teacher_title)] if teacher is not None else [])
     fig, axes = plt.subplots(1, len(panels), figsize=(4.2 * len(panels), 4.2), squeeze=False)
     ref = bench.reference[:SCATTER_POINTS] if x.dim() == 2 else None
     if ref is not None:

@@ -278,7 +278,7 @@ def cmd_draw(args) -> int:
     steps = report.n_steps(meta["steps"])
     who = "teacher" if meta["stage"] == 0 else f"{meta['method']} stage {meta['stage']}"
     report.sample_picture(x, SimpleNamespace(reference=backdrop), picture, f"{who}: {steps}, seed {seed}",
-                          teacher=beside)
+                          teacher=beside, teacher_title=f"teacher: {report.n_steps(int(cfg.teacher.steps))}, same noise")
     print(f"drew {count} samples from {who} ({steps}) of {args.run_dir}" if meta["stage"] == 0 else
           f"drew {count} samples from stage {meta['stage']} ({meta['method']}, {steps}) of {args.run_dir}")
     print(f"  samples: {out}  shape {tuple(x.shape)}\n  picture: {picture}" +
