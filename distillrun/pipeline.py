@@ -193,7 +193,7 @@ def attach_verdict(cfg, record: dict, reference: dict) -> dict:
         quality = {k.split("/", 1)[1]: val for k, val in record["metrics"].items() if k.startswith("quality/")}
         v = stopping.judge_rule(quality, reference["teacher"], cfg.stop)
     return {**record, "verdict": v.verdict, "rule": v.reason, "limit": v.limit, "margin": v.margin,
-            "decided_by": v.metric or cfg.stop.metric, "seen": v.seen, "detectable": v.detectable, "panel": v.panel}
+            "decided_by": v.metric or None, "seen": v.seen, "detectable": v.detectable, "panel": v.panel}
 
 
 def run(cfg: DictConfig, recorder, recipe: str | None = None, data=None) -> dict:
