@@ -3,8 +3,9 @@ the teacher's own DDIM at the same step count as a baseline, and the floor of ev
 
 Every metric is reported with a standard error so the stop rule can tell a real loss from noise.
 Names (used in the run folder, MLflow and the README): quality/<m>, quality/<m>_se, baseline/<m>,
-floor/<m>, teacher/<m> for m in sw2, mmd2, fd (images), nll_gap, mode_tv, modes_dropped (mixture);
-divergence/teacher_{rms,median,p90,switch} and divergence/stage_teacher_{...}.
+floor/<m>, teacher/<m> for m in sw2, mmd2, mmd2_div4, mmd2_div16, precision, recall, density, coverage, c2st,
+fd (images), nll_gap, mode_tv, modes_dropped (mixture); divergence/teacher_{rms,median,p90,switch} and
+divergence/stage_teacher_{...}. Images are scored in the feature space of features.py (all metrics but the NLL gap).
 """
 from __future__ import annotations
 
@@ -18,6 +19,9 @@ from . import metrics
 from .data import Dataset
 
 CHUNK = 2048  # samples per sampler call: bounds memory for image nets
+# Extra MMD bandwidths, as divisors of the median one: small widths see local structure (a thin component, samples
+# strewn between modes) that the median width averages away (benchmarks/calibration.py measures what each sees).
+MMD_DIVISORS = (4, 16)
 
 
 @dataclass
@@ -37,7 +41,8 @@ class Bench:
     feature_net: torch.nn.Module | None = None
     reference_feats: torch.Tensor | None = None
     cache: dict = field(default_factory=dict)  # "teacher@256" -> samples, reused across stages
-    reference_within: float | None = None  # MMD^2's reference-only kernel term, computed once per run
+    reference_within: list[float] | None = None  # MMD^2's reference-only kernel terms, once per run and bandwidth
+    reference_radii: torch.Tensor | None = None  # the reference's k-NN radii (precision, density, coverage)
 
 
 def make_bench(data: Dataset, samples: int, projections: int, bootstrap: int, seed: int,
@@ -90,10 +95,19 @@ def quality(bench: Bench, x: torch.Tensor) -> dict[str, float]:
     ref = bench.reference_feats if bench.feature_net is not None else bench.reference
     out["sw2"], out["sw2_se"] = metrics.sliced_w2_bootstrap(feats, ref, bench.projections, reps=bench.bootstrap,
                                                             seed=bench.seed)
+    widths = [bench.bandwidth] + [bench.bandwidth / d for d in MMD_DIVISORS]
+    names = ["mmd2"] + [f"mmd2_div{d}" for d in MMD_DIVISORS]
     if bench.reference_within is None:
-        bench.reference_within = metrics.kernel_mean_within(ref, bench.bandwidth)
-    out["mmd2"] = metrics.mmd2_rbf(feats, ref, bench.bandwidth, within_y=bench.reference_within)
-    out["mmd2_se"] = metrics.mmd2_block_se(feats, ref, bench.bandwidth, seed=bench.seed)
+        bench.reference_within = metrics.kernel_means_within(ref, widths)
+    values = metrics.mmd2_multiscale(feats, ref, widths, within_y=bench.reference_within)
+    ses = metrics.mmd2_multiscale_block_se(feats, ref, widths, seed=bench.seed)
+    for name, v, se in zip(names, values, ses):
+        out[name], out[f"{name}_se"] = v, se
+    if bench.reference_radii is None:
+        bench.reference_radii = metrics.knn_radii(ref)
+    out.update(metrics.manifold_metrics(ref, feats, real_radii=bench.reference_radii))
+    c2st = metrics.classifier_two_sample(feats, ref, seed=bench.seed)
+    out["c2st"], out["c2st_se"] = c2st["acc"], c2st["se"]
     if bench.mixture is not None:
         gap = metrics.nll_gap(bench.mixture.log_prob, x, bench.entropy)
         out["nll_gap"], out["nll_gap_se"] = gap["gap"], gap["se"]

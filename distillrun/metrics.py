@@ -5,7 +5,8 @@ dicts of floats) so callers can write them to JSON directly. Samples are rows: x
 (anything with more dimensions is flattened to (n, -1)).
 
 Quality (samples versus data): `sliced_w2`, `mmd2_rbf` (with `median_bandwidth`, `mmd2_block_se`),
-`frechet_distance` / `frechet_from_features`, `nll_gap`, `mode_coverage`.
+`frechet_distance` / `frechet_from_features`, `nll_gap`, `mode_coverage`; with power where the density is unknown:
+`manifold_metrics` (k-NN precision, recall, density, coverage), `classifier_two_sample`, `mmd2_multiscale`.
 Divergence (student versus teacher from the same starting noise): `divergence`.
 Error bars: `bootstrap_se`.
 """
@@ -244,6 +245,199 @@ def mmd2_block_se(x: Tensor, y: Tensor, bandwidth: float, blocks: int = 10, seed
     return float(est.std(unbiased=True) / math.sqrt(blocks))
 
 
+# ------------------------------------------------------------------ k-nearest-neighbour manifold metrics
+# Neighbours per ball: Naeem et al. 2020 ("Reliable fidelity and diversity metrics for generative models",
+# ICML) recommend k = 5 for density and coverage; we use the same k for precision and recall (Kynkaenniemi et
+# al. 2019 use k = 3; their precision/recall at k = 5 is what Naeem et al. compare against).
+KNN_K = 5
+
+
+def _tree(x):
+    """A scikit-learn space-partitioning tree over rows of x (numpy float64): KD-tree in low dimensions, ball tree
+    above (KD-trees degrade towards brute force as the dimension grows). Queries are exact either way."""
+    from sklearn.neighbors import BallTree, KDTree
+
+    return KDTree(x) if x.shape[1] <= 16 else BallTree(x)
+
+
+def knn_radii(x: Tensor, k: int = KNN_K) -> Tensor:
+    """Distance from each row of x to its k-th nearest other row of x (the radius of its k-NN ball), shape (n,).
+    The query returns k + 1 neighbours, the first being the row itself (distance 0); coinciding rows count."""
+    x = _rows(x).cpu()
+    n = x.shape[0]
+    if not 1 <= k < n:
+        raise ValueError(f"k-NN radii need 1 <= k < n, got k={k}, n={n}")
+    d, _ = _tree(x.numpy()).query(x.numpy(), k=k + 1)
+    return torch.from_numpy(d[:, -1].copy())
+
+
+def manifold_terms(real: Tensor, fake: Tensor, k: int = KNN_K, real_radii: Tensor | None = None) -> dict:
+    """Per-point terms of `manifold_metrics`: {"precision", "density"} per fake row, {"recall", "coverage"} per real
+    row. Ball membership by radius queries with one radius per query point (exact, scikit-learn trees)."""
+    import numpy as np
+
+    x, y = _rows(real).cpu(), _rows(fake).cpu()
+    n, m = x.shape[0], y.shape[0]
+    rx = knn_radii(x, k) if real_radii is None else torch.as_tensor(real_radii).cpu().to(torch.float64)
+    ry = knn_radii(y, k)
+    xn, yn = x.numpy(), y.numpy()
+    # fakes inside each real ball: a radius query around every real point with its own radius
+    inside = _tree(yn).query_radius(xn, rx.numpy())
+    hits = np.concatenate(inside) if n else np.zeros(0, dtype=np.int64)
+    counts = torch.from_numpy(np.bincount(hits.astype(np.int64), minlength=m).astype(np.float64))
+    covered = torch.tensor([len(a) > 0 for a in inside], dtype=torch.float64)
+    # reals inside any fake ball
+    around = _tree(xn).query_radius(yn, ry.numpy())
+    hit_real = np.concatenate(around) if m else np.zeros(0, dtype=np.int64)
+    recalled = torch.zeros(n, dtype=torch.float64)
+    recalled[torch.from_numpy(np.unique(hit_real).astype(np.int64))] = 1.0
+    return {"precision": (counts > 0).to(torch.float64), "density": counts / k, "recall": recalled,
+            "coverage": covered}
+
+
+def manifold_metrics(real: Tensor, fake: Tensor, k: int = KNN_K, real_radii: Tensor | None = None) -> dict:
+    """Precision and recall (Kynkaenniemi et al. 2019, NeurIPS, Eq. 1-2) and density and coverage (Naeem et al.
+    2020, ICML, Eq. 3-4) of samples `fake` (M rows) against data `real` (N rows), with k-NN balls:
+
+        precision = 1/M sum_j 1[exists i: |Y_j - X_i| <= r_k(X_i)]      share of samples on the data manifold
+        recall    = 1/N sum_i 1[exists j: |X_i - Y_j| <= r_k(Y_j)]      share of data on the sample manifold
+        density   = 1/(kM) sum_j sum_i 1[|Y_j - X_i| <= r_k(X_i)]        ~1 for exact samples, can exceed 1
+        coverage  = 1/N sum_i 1[min_j |X_i - Y_j| <= r_k(X_i)]          share of data balls holding a sample
+
+    r_k(z): distance from z to its k-th nearest neighbour within its own set (`knn_radii`). `real_radii`: the
+    data's radii when the caller has them already (they depend on `real` and k alone).
+
+    Standard errors (`<name>_se`): each value is a mean of per-point terms (per sample for precision and density,
+    per data point for recall and coverage); se = std(terms) / sqrt(count). That treats the balls of the other set
+    as fixed: it holds the randomness of the set being averaged, not of the set that makes the balls. When two
+    sample sets are compared against one fixed data set (student against teacher) the data's part is common to
+    both; benchmarks/calibration.py compares these SEs with the spread over repeated exact draws.
+    """
+    out = {}
+    for name, t in manifold_terms(real, fake, k, real_radii).items():
+        out[name] = float(t.mean())
+        out[f"{name}_se"] = float(t.std(unbiased=True) / math.sqrt(t.shape[0]))
+    return {key: out[key] for key in ("precision", "precision_se", "recall", "recall_se", "density", "density_se",
+                                      "coverage", "coverage_se")}
+
+
+# ------------------------------------------------------------------------ classifier two-sample test
+C2ST_FOLDS = 2
+
+
+def classifier_two_sample(x: Tensor, y: Tensor, neighbours: int | None = None, seed: int = 0) -> dict:
+    """Classifier two-sample test (Lopez-Paz & Oquab 2017, ICLR, "Revisiting classifier two-sample tests"): label
+    the rows of x 1 and of y 0, train a classifier on part of the pooled set, report its accuracy on the rest.
+    Under x ~ y (same distribution) that accuracy is Binomial(n_test, 1/2) / n_test: 0.5 means the two sets cannot
+    be told apart; the Bayes-optimal classifier reaches 1/2 + TV(P, Q)/2.
+
+    The classifier is scikit-learn's k-nearest-neighbour vote (their C2ST-KNN) on features standardised with the
+    pooled mean and std, k = `neighbours` (default: the odd number nearest sqrt(n_train) / 2, their choice of
+    k ~ sqrt(n_tr)/2, odd so votes cannot tie); it has no training randomness, so the result depends on the data
+    and `seed` (the split) alone. Two folds, cross-fitted: train on one half, test on the other, then swap, so every
+    row is a held-out test point once. Returns {"acc", "se": sqrt(acc (1 - acc) / n_test) (binomial), "n_test",
+    "neighbours"}. Unequal set sizes are allowed; the accuracy then is the share of rows classified right.
+    """
+    from sklearn.neighbors import KNeighborsClassifier
+
+    a, b = _rows(x), _rows(y).to(_rows(x).device)
+    z = torch.cat([a, b]).cpu()
+    labels = torch.cat([torch.ones(a.shape[0]), torch.zeros(b.shape[0])]).long()
+    z = (z - z.mean(0)) / z.std(0).clamp_min(1e-12)
+    g = torch.Generator().manual_seed(int(seed))
+    # stratified split: each label's rows are shuffled and dealt to the folds in turn
+    folds = torch.empty(z.shape[0], dtype=torch.long)
+    for lab in (0, 1):
+        idx = torch.nonzero(labels == lab).reshape(-1)
+        idx = idx[torch.randperm(idx.shape[0], generator=g)]
+        folds[idx] = torch.arange(idx.shape[0]) % C2ST_FOLDS
+    n_train = int((folds != 0).sum())
+    if neighbours is None:
+        neighbours = max(1, int(round(math.sqrt(n_train) / 2)))
+        neighbours += 1 - neighbours % 2
+    zn, ln = z.numpy(), labels.numpy()
+    right = 0
+    for f in range(C2ST_FOLDS):
+        train, test = (folds != f).numpy(), (folds == f).numpy()
+        clf = KNeighborsClassifier(n_neighbors=neighbours).fit(zn[train], ln[train])
+        right += int((clf.predict(zn[test]) == ln[test]).sum())
+    n_test = z.shape[0]
+    acc = right / n_test
+    return {"acc": acc, "se": math.sqrt(max(acc * (1 - acc), 0.25 / n_test) / n_test), "n_test": n_test,
+            "neighbours": neighbours}
+
+
+# ------------------------------------------------------------------------------------ multi-scale MMD
+def mmd2_multiscale(x: Tensor, y: Tensor, bandwidths: Sequence[float],
+                    within_y: Sequence[float] | None = None) -> list[float]:
+    """`mmd2_rbf` at several bandwidths, from one distance computation per block: [MMD_u^2(h) for h in bandwidths].
+    Small bandwidths see local structure (a thin component, points between modes) that the median bandwidth
+    averages away. `within_y`: the y-only kernel means at the same bandwidths (`kernel_means_within`), if known."""
+    x, y = _rows(x), _rows(y)
+    y = y.to(x.device)
+    n, m = x.shape[0], y.shape[0]
+    if n < 2 or m < 2:
+        raise ValueError(f"unbiased MMD^2 needs at least 2 samples per set, got {n} and {m}")
+    hs = [float(h) for h in bandwidths]
+    kxx = [v / (n * (n - 1)) for v in _kernel_sums(x, x, hs, exclude_diagonal=True)]
+    kyy = kernel_means_within(y, hs) if within_y is None else [float(v) for v in within_y]
+    kxy = [v / (n * m) for v in _kernel_sums(x, y, hs, exclude_diagonal=False)]
+    return [a + b - 2.0 * c for a, b, c in zip(kxx, kyy, kxy)]
+
+
+def kernel_means_within(y: Tensor, bandwidths: Sequence[float]) -> list[float]:
+    """`kernel_mean_within` at several bandwidths (one distance computation)."""
+    y = _rows(y)
+    m = y.shape[0]
+    return [v / (m * (m - 1)) for v in _kernel_sums(y, y, [float(h) for h in bandwidths], exclude_diagonal=True)]
+
+
+def _squarings(h_from: float, h_to: float) -> int | None:
+    """s when exp(-d^2/(2 h_to^2)) = exp(-d^2/(2 h_from^2))^(2^s), i.e. (h_from / h_to)^2 = 2^s; None otherwise."""
+    r = (h_from / h_to) ** 2
+    s = round(math.log2(r)) if r >= 1 else -1
+    return s if s >= 0 and math.isclose(r, 2.0 ** s, rel_tol=1e-12) else None
+
+
+def _kernel_sums(a: Tensor, b: Tensor, hs: list[float], exclude_diagonal: bool) -> list[float]:
+    """`_kernel_sum` for several bandwidths, sharing each block's squared distances. Going from a bandwidth to one
+    2^(s/2) times smaller, the kernel is the previous one raised to 2^s: s in-place squarings instead of an exp
+    (the default widths, the median and its quarter and sixteenth, differ by 4x, i.e. 4 squarings)."""
+    totals = [0.0] * len(hs)
+    order = sorted(range(len(hs)), key=lambda i: -hs[i])  # widest first
+    rows = max(16, MMD_BLOCK_ELEMENTS // max(b.shape[0], 1))
+    for start in range(0, a.shape[0], rows):
+        block = a[start:start + rows]
+        d2 = _sq_dists(block, b[start:] if exclude_diagonal else b)
+        r = block.shape[0]
+        k, h_prev = None, None
+        for i in order:
+            s = _squarings(h_prev, hs[i]) if k is not None else None
+            if s is None:
+                k = torch.exp(d2 * (-0.5 / (hs[i] * hs[i])))
+            else:
+                for _ in range(s):
+                    k.square_()
+            h_prev = hs[i]
+            totals[i] += float(k[:, :r].sum()) + 2.0 * float(k[:, r:].sum()) if exclude_diagonal else float(k.sum())
+    if exclude_diagonal:
+        totals = [t - a.shape[0] for t in totals]
+    return totals
+
+
+def mmd2_multiscale_block_se(x: Tensor, y: Tensor, bandwidths: Sequence[float], blocks: int = 10,
+                             seed: int = 0) -> list[float]:
+    """`mmd2_block_se` at several bandwidths (the same blocks for each)."""
+    x, y = _rows(x), _rows(y)
+    y = y.to(x.device)
+    g = torch.Generator().manual_seed(int(seed))
+    px = torch.randperm(x.shape[0], generator=g).to(x.device)
+    py = torch.randperm(y.shape[0], generator=g).to(x.device)
+    bx, by = torch.tensor_split(x[px], blocks), torch.tensor_split(y[py], blocks)
+    est = torch.tensor([mmd2_multiscale(a, b, bandwidths) for a, b in zip(bx, by)], dtype=torch.float64)
+    return [float(v) for v in est.std(dim=0, unbiased=True) / math.sqrt(blocks)]
+
+
 # ------------------------------------------------------------------------------------------- Fréchet
 def _sym_sqrt(c: Tensor) -> Tensor:
     """Square root of a symmetric PSD matrix by eigendecomposition (negative round-off eigenvalues -> 0)."""
@@ -396,6 +590,7 @@ def bootstrap_se(stat_fn: Callable[..., float], *arrays: Tensor, reps: int = BOO
 __all__: Sequence[str] = (
     "random_projections", "sliced_wasserstein", "sliced_w2", "sliced_w2_bootstrap", "median_bandwidth",
     "kernel_mean_within", "mmd2_rbf", "mmd2_block_se",
-    "frechet_distance", "mean_cov", "frechet_from_features", "nll_gap", "mode_coverage", "divergence",
+    "knn_radii", "manifold_terms", "manifold_metrics", "classifier_two_sample", "mmd2_multiscale", "kernel_means_within",
+    "mmd2_multiscale_block_se", "frechet_distance", "mean_cov", "frechet_from_features", "nll_gap", "mode_coverage", "divergence",
     "bootstrap_se",
 )

@@ -142,9 +142,35 @@ def reference_quality(cfg, bench, teacher: Teacher, run_dir: Path) -> dict:
     checkpoint.kill_point("reference:evaluate")
     t0 = time.perf_counter()
     ref = {"teacher": evaluate.quality(bench, samples), "floor": evaluate.quality(bench, bench.floor_set),
-           "steps": cfg.teacher.steps, "seconds": secs + time.perf_counter() - t0}
+           "steps": cfg.teacher.steps, "samples": int(bench.noise.shape[0]), "seconds": secs + time.perf_counter() - t0}
     checkpoint.atomic_write_json(path, ref)
     return ref
+
+
+def evaluation_size(cfg, data, run_dir: Path | None = None) -> int:
+    """eval.samples, or with eval.detect set, the size at which the stop rule's metrics detect a worsening of
+    eval.detect at stop.z. A pilot scores exact data against exact data at eval.samples (the teacher's se is about
+    the same); a mean's se falls as 1/sqrt(n), so n = eval.samples * (z * sqrt(2) * se / eval.detect)^2, the
+    largest over the judged metrics, rounded up to a multiple of 256 (at least 512). Kept in reference.json, so a
+    resumed run reuses it."""
+    n0 = cfg.eval.samples
+    if cfg.eval.detect is None:
+        return n0
+    if run_dir is not None and (run_dir / "reference.json").exists():
+        import json
+        kept = json.loads((run_dir / "reference.json").read_text()).get("samples")
+        if kept:
+            return int(kept)
+    pilot = evaluate.make_bench(data, n0, cfg.eval.projections, cfg.eval.bootstrap, cfg.eval.seed + 7,
+                                cond_needed=False)
+    q = evaluate.quality(pilot, pilot.floor_set)
+    n = 512
+    for m in stopping.rule_metrics(cfg.stop):
+        se = q.get(f"{m}_se", math.nan)
+        if math.isfinite(se) and se > 0:
+            n = max(n, stopping.samples_for(n0, cfg.stop.z * math.sqrt(2) * se, cfg.eval.detect))
+    print(f"eval.detect={cfg.eval.detect:g}: evaluating on {n} samples (pilot at {n0})", flush=True)
+    return n
 
 
 def student_samples(cfg, method: Method, student, steps: int, bench) -> torch.Tensor:
@@ -182,8 +208,9 @@ def attach_verdict(cfg, record: dict, reference: dict) -> dict:
         v = stopping.Verdict(stopping.FAILED, math.nan, math.nan, math.nan, f"training failed: {record['failed']}")
     else:
         quality = {k.split("/", 1)[1]: val for k, val in record["metrics"].items() if k.startswith("quality/")}
-        v = stopping.judge(quality, reference["teacher"], cfg.stop.metric, cfg.stop.tolerance, cfg.stop.mode, cfg.stop.z)
-    return {**record, "verdict": v.verdict, "rule": v.reason, "limit": v.limit, "margin": v.margin}
+        v = stopping.judge_rule(quality, reference["teacher"], cfg.stop)
+    return {**record, "verdict": v.verdict, "rule": v.reason, "limit": v.limit, "margin": v.margin,
+            "decided_by": v.metric or None, "seen": v.seen, "detectable": v.detectable, "panel": v.panel}
 
 
 @dataclass
@@ -226,9 +253,12 @@ def _run(cfg: DictConfig, recorder, recipe, data, stages: list[StageSpec], run_d
     previous_samples = reference = None
     if is_main:
         recorder.teacher(teacher)
-        run.bench = evaluate.make_bench(data, cfg.eval.samples, cfg.eval.projections, cfg.eval.bootstrap,
+        samples = evaluation_size(cfg, data, run_dir)
+        run.bench = evaluate.make_bench(data, samples, cfg.eval.projections, cfg.eval.bootstrap,
                                         cfg.eval.seed, cond_needed=teacher.num_classes > 0)
         reference = reference_quality(cfg, run.bench, teacher, run_dir)
+        for line in stopping.power_warnings(reference["teacher"], cfg.stop, samples):
+            print(f"warning: {line}", flush=True)
         recorder.reference(reference)
         previous_samples = run.bench.cache[f"teacher@{cfg.teacher.steps}"]
     records, previous, stage_teacher = [], teacher.init_student, teacher.denoiser
@@ -323,8 +353,14 @@ def summarize(cfg, stages, records, reference, run_dir: Path) -> dict:
         why = f"stage {last['index']} ({report.n_steps(last['steps'])}) left the tolerance: {last['rule']}"
     else:
         why = f"reached the target of {report.n_steps(stages[-1].steps)}" if stages else "nothing to do"
-    summary = {"method": cfg.method.name, "stop_metric": cfg.stop.metric, "tolerance": cfg.stop.tolerance,
-               "mode": cfg.stop.mode, "reference": reference, "stages": records, "stopped_because": why,
+    judged = [r for r in records if r.get("decided_by")]
+    summary = {"method": cfg.method.name, "stop_rule": cfg.stop.metric,
+               # the metric that decided the last judged stage (tables and plots show it); the rule's own, if one
+               "stop_metric": judged[-1]["decided_by"] if judged else stopping.rule_metrics(cfg.stop)[0],
+               "panel": list(cfg.stop.panel) if cfg.stop.metric == stopping.PANEL else None,
+               "tolerance": stopping.tolerance_of(cfg.stop), "mode": cfg.stop.mode, "z": cfg.stop.z,
+               "power_warnings": stopping.power_warnings(reference["teacher"], cfg.stop, reference.get("samples", 0)),
+               "reference": reference, "stages": records, "stopped_because": why,
                "chosen": None if chosen is None else {"index": chosen["index"], "steps": chosen["steps"],
                                                       "folder": f"stage-{chosen['index']:02d}"},
                "failed": bool(last and last["verdict"] == stopping.FAILED)}

@@ -112,7 +112,8 @@ class Recorder:
                   "teacher_steps": record["teacher_steps"], "iterations": record["iterations"]}
         resume = entry.get("run") or self.tracker.stage_runs().get(name)
         run_id = self.tracker.start_stage(name, params, resume_run_id=resume,
-                                          tags={"distillrun.verdict": record["verdict"], "distillrun.rule": record["rule"]},
+                                          tags={"distillrun.verdict": record["verdict"], "distillrun.rule": record["rule"],
+                                                "distillrun.decided_by": record.get("decided_by") or ""},
                                           seconds_ago=record["seconds"]["train"] + record["seconds"]["eval"])
         checkpoint.kill_point(f"tracking:stage-{record['index']:02d}")
         self.ids["stages"][key] = {"run": run_id, "done": False, "attempt": attempt}
@@ -120,7 +121,10 @@ class Recorder:
         losses = checkpoint.read_json(stage_dir / "loss.json")["loss"] if (stage_dir / "loss.json").exists() else []
         self._log_curve("loss", losses)
         secs = record["seconds"]
-        self._log_new({**record["metrics"], "steps": record["steps"], "verdict": VERDICT_CODE[record["verdict"]],
+        seen = {f"stop/{m}_seen": p["seen"] for m, p in (record.get("panel") or {}).items()}
+        seen["stop/seen"] = record.get("seen", float("nan"))
+        seen = {k: v for k, v in seen.items() if v is not None and abs(v) < float("inf")}  # seen is nan without an se
+        self._log_new({**record["metrics"], **seen, "steps": record["steps"], "verdict": VERDICT_CODE[record["verdict"]],
                        "seconds/train": secs["train"], "seconds/eval": secs["eval"], "its_per_s": record["its_per_s"]},
                       self.tracker.logged_metrics() if resume else {})
         for name in ("samples.png", "metrics.json"):

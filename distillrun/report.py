@@ -37,20 +37,49 @@ def image_grid(x: torch.Tensor, rows: int = 8, cols: int = 8, gap: int = 1) -> t
     return x[..., 0] if c == 1 else x
 
 
-def sample_picture(x: torch.Tensor, bench, path: Path, title: str) -> None:
-    """Scatter (2D: samples over the data) or image grid of a stage's samples."""
-    fig, ax = plt.subplots(figsize=(4.2, 4.2))
-    if x.dim() == 4:
-        ax.imshow(image_grid(x).numpy(), cmap="gray", vmin=0, vmax=1)
-        ax.axis("off")
-    else:
-        ref = bench.reference[:SCATTER_POINTS]
-        ax.scatter(ref[:, 0], ref[:, 1], s=2, c="0.75", label="data")
-        ax.scatter(x[:SCATTER_POINTS, 0], x[:SCATTER_POINTS, 1], s=2, c="tab:blue", label="samples")
-        ax.set_aspect("equal")
-        ax.set_xlim(-3, 3), ax.set_ylim(-3, 3)
-        ax.legend(loc="upper right", markerscale=4, fontsize=8)
-    ax.set_title(title, fontsize=9)
+def scatter_limits(*sets: torch.Tensor, margin: float = 0.08, tail: float = 0.002) -> tuple[tuple, tuple]:
+    """Axis limits (x, y) that fit the given point sets together: the tail..1-tail quantiles of all points pooled
+    per axis (a few wild samples do not squash the picture), widened by `margin` of the span on each side."""
+    pts = torch.cat([s[:, :2].to(torch.float64) for s in sets if s.numel()])
+    pts = pts[torch.isfinite(pts).all(1)]
+    if not len(pts):
+        return (-3.0, 3.0), (-3.0, 3.0)
+    lo, hi = torch.quantile(pts, tail, dim=0), torch.quantile(pts, 1 - tail, dim=0)
+    pad = (hi - lo).clamp_min(1e-6) * margin
+    lo, hi = lo - pad, hi + pad
+    return (float(lo[0]), float(hi[0])), (float(lo[1]), float(hi[1]))
+
+
+def outside(x: torch.Tensor, xlim: tuple, ylim: tuple) -> int:
+    """How many rows of x fall outside the axes (non-finite rows count)."""
+    inside = (x[:, 0] >= xlim[0]) & (x[:, 0] <= xlim[1]) & (x[:, 1] >= ylim[0]) & (x[:, 1] <= ylim[1])
+    return int((~inside).sum())
+
+
+def sample_picture(x: torch.Tensor, bench, path: Path, title: str, teacher: torch.Tensor | None = None,
+                   teacher_title: str = "teacher at full steps") -> None:
+    """Scatter (2D: samples over the data, axes fitted to both; the title says how many samples fall outside) or
+    image grid of a stage's samples. `teacher`: the teacher's samples at full steps, drawn in a panel beside."""
+    panels = [(x, title)] + ([(teacher, teacher_title)] if teacher is not None else [])
+    fig, axes = plt.subplots(1, len(panels), figsize=(4.2 * len(panels), 4.2), squeeze=False)
+    ref = bench.reference[:SCATTER_POINTS] if x.dim() == 2 else None
+    if ref is not None:
+        xlim, ylim = scatter_limits(ref, *(p[:SCATTER_POINTS] for p, _ in panels))
+    for ax, (pts, label) in zip(axes[0], panels):
+        if pts.dim() == 4:
+            ax.imshow(image_grid(pts).numpy(), cmap="gray", vmin=0, vmax=1)
+            ax.axis("off")
+        else:
+            shown = pts[:SCATTER_POINTS]
+            ax.scatter(ref[:, 0], ref[:, 1], s=2, c="0.75", label="data")
+            ax.scatter(shown[:, 0], shown[:, 1], s=2, c="tab:blue", label="samples")
+            ax.set_aspect("equal")
+            ax.set_xlim(*xlim), ax.set_ylim(*ylim)
+            ax.legend(loc="upper right", markerscale=4, fontsize=8)
+            out = outside(shown, xlim, ylim)
+            if out:
+                label += f"\n{out} of {len(shown)} samples outside the axes"
+        ax.set_title(label, fontsize=9)
     _save(fig, path)
 
 
@@ -86,27 +115,60 @@ def write_plots(summary: dict, run_dir: Path) -> list[Path]:
     return [path]
 
 
+def rule_metrics(summary: dict) -> list[str]:
+    """The metrics the run's stop rule judged by: the panel's, or the one stop metric."""
+    return list(summary.get("panel") or {}) or [summary["stop_metric"]]
+
+
 def stage_table(summary: dict) -> str:
-    """The terminal table printed at the end of a run."""
-    metric = summary["stop_metric"]
+    """The terminal table printed at the end of a run: each judged metric with its standard error, the metric that
+    decided the verdict and how many standard errors the student is worse than the teacher on it ("seen")."""
+    judged = rule_metrics(summary)
     ref = summary["reference"]
-    head = f"{'stage':>5} {'steps':>5}  {metric + ' ± se':>18}  {'DDIM baseline':>13}  {'diverg. rms':>11}  " \
-           f"{'verdict':>7}  {'seconds':>7}"
+    cols = [f"{m} ± se" for m in judged]
+    widths = [max(16, len(c)) for c in cols]
+    head = f"{'stage':>5} {'steps':>5}  " + "  ".join(f"{c:>{w}}" for c, w in zip(cols, widths)) + \
+        f"  {'decided by':>10}  {'seen':>6}  {'DDIM baseline':>13}  {'diverg. rms':>11}  {'verdict':>7}  {'seconds':>7}"
+    teach = "  ".join(f"{_pm(ref['teacher'], m):>{w}}" for m, w in zip(judged, widths))
     lines = [head, "-" * len(head),
-             f"{'teach':>5} {ref.get('steps', 0):>5}  {_pm(ref['teacher'], metric):>18}  {'':>13}  {'':>11}  "
-             f"{'':>7}  {'':>7}"]
+             f"{'teach':>5} {ref.get('steps', 0):>5}  {teach}  {'':>10}  {'':>6}  {'':>13}  {'':>11}  {'':>7}  {'':>7}"]
     for r in summary["stages"]:
         m = r["metrics"]
         secs = r["seconds"]["train"] + r["seconds"]["eval"]
-        lines.append(f"{r['index']:>5} {r['steps']:>5}  {_pm(m, metric, 'quality/'):>18}  "
-                     f"{m.get(f'baseline/{metric}', math.nan):>13.4g}  {m.get('divergence/teacher_rms', math.nan):>11.4g}  "
+        decider = r.get("decided_by") or summary["stop_metric"]
+        vals = "  ".join(f"{_pm(m, k, 'quality/'):>{w}}" for k, w in zip(judged, widths))
+        seen = r.get("seen", math.nan)
+        seen = math.nan if seen is None else seen
+        lines.append(f"{r['index']:>5} {r['steps']:>5}  {vals}  {decider:>10}  {seen:>+6.1f}  "
+                     f"{m.get(f'baseline/{decider}', math.nan):>13.4g}  {m.get('divergence/teacher_rms', math.nan):>11.4g}  "
                      f"{r['verdict']:>7}  {secs:>7.1f}")
     chosen = summary["chosen"]
-    lines.append(f"floor ({metric}, data vs data): {ref['floor'][metric]:.4g}")
+    floors = ", ".join(f"{k} {ref['floor'].get(k, math.nan):.4g}" for k in judged)
+    lines.append(f"floor (data vs data): {floors}")
+    lines.append("rule: " + rule_text(summary))
+    for w in summary.get("power_warnings") or []:
+        lines.append(f"warning: {w}")
     lines.append(f"stopped: {summary['stopped_because']}")
     lines.append("chosen student: " + (f"stage {chosen['index']} at {n_steps(chosen['steps'])} ({chosen['folder']})"
                                        if chosen else "none within tolerance"))
     return "\n".join(lines)
+
+
+def rule_text(summary: dict) -> str:
+    """One line: what the stop rule allows."""
+    z = summary.get("z", math.nan)
+    if summary.get("panel"):
+        return (f"over when any of {', '.join(summary['panel'])} is worse than the teacher's by more than "
+                f"{summary['tolerance']:g} (a share of points) plus {z:g} se; seen = (worsening against the teacher) / se")
+    return (f"{summary['stop_metric']} {summary.get('mode', '')} tolerance {summary.get('tolerance', math.nan):g}, "
+            f"z={z:g}; seen = (worsening against the teacher) / se")
+
+
+def _higher_better(metric: str) -> bool:
+    from .metric_props import METRIC_PROPS
+
+    p = METRIC_PROPS.get(metric)
+    return bool(p and p.higher_better)
 
 
 def n_steps(n: int) -> str:

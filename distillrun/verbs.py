@@ -1,7 +1,7 @@
 """The verbs beside the run command. `main(verb, argv)` parses, runs, and turns bad input into one line, exit 2.
 
   distillrun recipes [NAME]                                  every recipe: purpose, CPU time, command; NAME: its YAML
-  distillrun draw RUN_DIR [--stage N] [--count N] [--seed S] [--out PATH]
+  distillrun draw RUN_DIR [--stage N] [--beside-teacher] [--count N] [--seed S] [--out PATH]   (--stage 0: teacher)
   distillrun compare RUN_DIR [RUN_DIR ...] [--metric M] [--out DIR]
 
 `draw` with --seed S and --count N feeds a stage the evaluation noise bank of eval.seed=S, eval.samples=N,
@@ -182,6 +182,16 @@ def draw_samples(model, meta: dict, cfg, count: int, seed: int, data_fn):
     return evaluate.draw(sampler, SimpleNamespace(noise=noise, cond=cond))
 
 
+def _scored_count(run_dir: Path, cfg) -> int:
+    """The size of the noise bank the stages were scored on (eval.detect may have sized it)."""
+    import json
+
+    try:
+        return int(json.loads((run_dir / "reference.json").read_text()).get("samples") or cfg.eval.samples)
+    except (OSError, ValueError):
+        return cfg.eval.samples
+
+
 def draw_target(args, run_dir: Path, index: int, seed: int, count: int) -> Path:
     name = f"stage-{index:02d}_seed-{seed}_n-{count}.npy"
     out = args.out if args.out is not None else run_dir / "drawn" / name
@@ -192,6 +202,37 @@ def draw_target(args, run_dir: Path, index: int, seed: int, count: int) -> Path:
     return out
 
 
+def teacher_model(run_dir: Path, cfg, data_fn):
+    """(the run's teacher at its full steps as a sampler-ready SimpleNamespace, meta): loaded from RUN_DIR/teacher,
+    never trained here (the oracle and an imported teacher are rebuilt from the config)."""
+    from . import teachers
+
+    if cfg.teacher.source == "train" and not (run_dir / "teacher" / "model.json").exists():
+        raise InputError(f"--stage 0: RUN_DIR {run_dir} has no finished teacher (teacher/model.json)")
+    teacher = teachers.prepare_teacher(cfg, data_fn(), run_dir)
+    shape = list(data_fn().shape)
+    meta = {"method": "teacher", "stage": 0, "steps": int(cfg.teacher.steps),
+            "net": {"data_shape": shape, "num_classes": teacher.num_classes}}
+    return teacher, meta
+
+
+def draw_teacher(teacher, meta: dict, cfg, count: int, seed: int, data_fn):
+    """The teacher at full steps (its own sampler) on the noise bank of eval.seed=seed, eval.samples=count."""
+    import torch
+
+    from . import evaluate, pipeline
+
+    g = torch.Generator().manual_seed(seed)
+    noise = torch.randn((count, *meta["net"]["data_shape"]), generator=g)
+    cond = None
+    if meta["net"]["num_classes"]:
+        labels = data_fn().labels
+        cond = labels[torch.randint(0, len(labels), (count,), generator=g)]
+    torch.set_num_threads(cfg.compute.threads)
+    sampler = pipeline.teacher_sampler(teacher.denoiser, int(cfg.teacher.steps), cfg.teacher.sampler)
+    return evaluate.draw(sampler, SimpleNamespace(noise=noise, cond=cond))
+
+
 def cmd_draw(args) -> int:
     import numpy as np
     import torch
@@ -199,16 +240,26 @@ def cmd_draw(args) -> int:
     from . import checkpoint, pipeline, report
 
     cfg, summary = open_run(args.run_dir)
-    folder = pick_stage(args.run_dir, summary, args.stage)
-    count = args.count if args.count is not None else cfg.eval.samples
+    count = args.count if args.count is not None else _scored_count(args.run_dir, cfg)
     seed = args.seed if args.seed is not None else cfg.eval.seed
     if count < 1:
         raise InputError(f"--count {count}: must be >= 1")
     data = {}
     data_fn = lambda: data.setdefault("d", pipeline.load_data(cfg))  # noqa: E731  (loaded only when needed)
-    model, meta = rebuild_student(folder)
+    teacher = None
+    if args.stage == 0:
+        teacher, meta = teacher_model(args.run_dir, cfg, data_fn)
+    else:
+        folder = pick_stage(args.run_dir, summary, args.stage)
+        model, meta = rebuild_student(folder)
+        if args.beside_teacher:
+            teacher, _ = teacher_model(args.run_dir, cfg, data_fn)
     out = draw_target(args, args.run_dir, meta["stage"], seed, count)
-    x = draw_samples(model, meta, cfg, count, seed, data_fn)
+    if meta["stage"] == 0:
+        x = draw_teacher(teacher, meta, cfg, count, seed, data_fn)
+    else:
+        x = draw_samples(model, meta, cfg, count, seed, data_fn)
+    beside = draw_teacher(teacher, meta, cfg, count, seed, data_fn) if meta["stage"] and teacher is not None else None
     backdrop = torch.empty(0, *x.shape[1:])  # the data behind a 2D scatter, when it can still be loaded
     if x.dim() == 2:
         try:
@@ -220,10 +271,13 @@ def cmd_draw(args) -> int:
     checkpoint.atomic_write_bytes(out, buf.getvalue())
     picture = out.with_suffix(".png")
     steps = report.n_steps(meta["steps"])
-    report.sample_picture(x, SimpleNamespace(reference=backdrop), picture,
-                          f"{meta['method']} stage {meta['stage']}: {steps}, seed {seed}")
-    print(f"drew {count} samples from stage {meta['stage']} ({meta['method']}, {steps}) of {args.run_dir}")
-    print(f"  samples: {out}  shape {tuple(x.shape)}\n  picture: {picture}")
+    who = "teacher" if meta["stage"] == 0 else f"{meta['method']} stage {meta['stage']}"
+    report.sample_picture(x, SimpleNamespace(reference=backdrop), picture, f"{who}: {steps}, seed {seed}",
+                          teacher=beside, teacher_title=f"teacher: {report.n_steps(int(cfg.teacher.steps))}, same noise")
+    print(f"drew {count} samples from {who} ({steps}) of {args.run_dir}" if meta["stage"] == 0 else
+          f"drew {count} samples from stage {meta['stage']} ({meta['method']}, {steps}) of {args.run_dir}")
+    print(f"  samples: {out}  shape {tuple(x.shape)}\n  picture: {picture}" +
+          ("  (the teacher at full steps beside it, same noise)" if beside is not None else ""))
     return 0
 
 
@@ -269,7 +323,8 @@ def cmd_compare(args) -> int:
 # ------------------------------------------------------------------------------------------------ parsing
 DESCRIPTIONS = {
     "recipes": "List the ready-made recipes: purpose, expected CPU time and the command that runs each.",
-    "draw": "Sample from a finished run's chosen student (or any finished stage): an .npy array and a picture. "
+    "draw": "Sample from a finished run's chosen student (or any finished stage; 0 is the teacher at its full "
+            "steps): an .npy array and a picture. "
             "With the default --seed and --count it repeats the samples the stage was scored on.",
     "compare": "One table with every stage of one or more runs, and plots: quality versus steps (students and the "
                "teacher's DDIM baseline), divergence per stage, and the stages' samples side by side.",
@@ -282,7 +337,10 @@ def _parser(verb: str) -> argparse.ArgumentParser:
         p.add_argument("name", nargs="?", metavar="NAME", help="print this recipe's YAML instead of the list")
     elif verb == "draw":
         p.add_argument("run_dir", type=Path, metavar="RUN_DIR", help="a finished run folder")
-        p.add_argument("--stage", type=int, metavar="N", help="stage index (default: the chosen student)")
+        p.add_argument("--stage", type=int, metavar="N", help="stage index (default: the chosen student); 0: the "
+                       "teacher at its full steps")
+        p.add_argument("--beside-teacher", action="store_true", help="draw the teacher at its full steps from the "
+                       "same noise in a panel beside the stage's samples")
         p.add_argument("--count", type=int, metavar="N", help="how many samples (default: the run's eval.samples)")
         p.add_argument("--seed", type=int, metavar="S", help="noise seed (default: the run's eval.seed; with the "
                        "default count this repeats the samples the stage was scored on)")

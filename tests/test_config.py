@@ -97,6 +97,15 @@ def test_default_composes_to_the_default_recipe():
     assert cfg.data.name == "archipelago" and cfg.method.name == "progressive" and cfg.teacher.source == "train"
 
 
+def test_default_stop_rule_is_the_panel_of_share_metrics():
+    # README "Choosing the stop rule": the default rule is the panel precision + coverage with tolerance null (0.02).
+    cfg = _compose([])
+    assert cfg.stop.metric == "panel" and list(cfg.stop.panel) == ["precision", "coverage"]
+    assert cfg.stop.tolerance is None and cfg.eval.detect is None
+    validate(_compose(["stop.panel=[precision,coverage,c2st,recall]", "stop.tolerance=0.05"]))
+    validate(_compose(["stop.metric=sw2"]))  # one metric, relative, default tolerance 0.25
+
+
 def test_command_line_group_choice_beats_the_recipe():
     # Hydra: command-line overrides have the highest priority, above a recipe's `override /data: ...`.
     assert _compose(["data=spiral"]).data.name == "spiral"
@@ -118,6 +127,13 @@ BAD = [
     (["stop.metric=mmd2"], "stop.mode"),  # stop=relative (default) with a metric that hovers around 0
     (["stop=relative", "stop.metric=nll_gap"], "stop.mode"),
     (["stop.tolerance=-1"], "stop.tolerance"),
+    (["stop.panel=[precision,sw2]"], "stop.panel"),  # the panel's one tolerance is a share: sw2 is not one
+    (["stop.panel=[fd]"], "stop.panel"),  # not a share, and images only
+    (["stop.panel=[]"], "stop.panel"),
+    (["stop=absolute", "stop.metric=precision", "stop.tolerance=null"], "stop.tolerance"),  # absolute needs a unit
+    (["stop.metric=mmd2_div4"], "stop.mode"),  # signed: relative refused
+    (["eval.detect=0"], "eval.detect"),
+    (["eval.detect=-0.01"], "eval.detect"),
     (["method=consistency", "method.steps=[1,2,4]"], "method.steps"),  # not descending
     (["data=spiral", "teacher=oracle"], "teacher.source"),
 ]

@@ -92,3 +92,27 @@ def test_autoencoder_without_labels_16px(tmp_path):
     net = feature_net_for(images, cache_dir=tmp_path, iterations=5)
     assert isinstance(net, FeatureNet) and net.meta["kind"] == "autoencoder"
     assert features(net, images).shape == (64, 64)
+
+
+def test_new_quality_metrics_run_in_the_feature_space(trained, digits):
+    # The pipeline's evaluate.quality on images scores every metric on features (precision/recall: Kynkaenniemi
+    # et al. 2019; density/coverage: Naeem et al. 2020; classifier two-sample test: Lopez-Paz & Oquab 2017).
+    # Exact halves of the data: on the manifold, covered, indistinguishable. Digits 0-4 only (half the classes
+    # dropped): coverage falls (~half of the data's balls empty), precision stays. Uniform noise: off the manifold.
+    from distillrun import evaluate, metrics
+
+    net, _ = trained
+    images, labels = digits
+    perm = torch.randperm(len(images), generator=torch.Generator().manual_seed(0))
+    ref, half = images[perm[:898]], images[perm[898:1796]]
+    feats = features(net, ref)
+    bench = evaluate.Bench(None, None, ref, None, metrics.random_projections(feats.shape[1], 32, 0),
+                           metrics.median_bandwidth(feats, feats), 10, 0, feature_net=net, reference_feats=feats)
+    exact = evaluate.quality(bench, half)
+    dropped = evaluate.quality(bench, half[labels[perm[898:1796]] < 5])
+    noise = evaluate.quality(bench, torch.rand(400, *images.shape[1:], generator=torch.Generator().manual_seed(1)) * 2 - 1)
+    for key in ("precision", "recall", "density", "coverage", "c2st", "mmd2_div4", "mmd2_div16", "fd"):
+        assert key in exact and f"{key}_se" in exact, key
+    assert exact["precision"] > 0.85 and exact["coverage"] > 0.85 and abs(exact["c2st"] - 0.5) < 4 * exact["c2st_se"]
+    assert dropped["coverage"] < exact["coverage"] - 0.3 and dropped["precision"] > 0.85
+    assert noise["precision"] < 0.1 and noise["c2st"] > 0.95

@@ -295,3 +295,125 @@ def test_bootstrap_se_for_sliced_w2_runs():
     proj = M.random_projections(2, 16, seed=0)
     se = M.bootstrap_se(lambda a, b: M.sliced_w2(a, b, proj), x, y, reps=20)
     assert 0 < se < 0.2 * M.sliced_w2(x, y, proj)
+
+
+# ------------------------------------------------------------- k-NN precision, recall, density, coverage
+def test_manifold_metrics_hand_example():
+    # Hand arithmetic from the definitions: Kynkaenniemi et al. 2019 (precision, recall, Eq. 1-2) and Naeem et al.
+    # 2020 (density, coverage, Eq. 3-4). real = 0,1,2,3 on a line, k = 1: every real radius is 1. fake = 0.5, 10.
+    # 0.5 lies in the balls of reals 0 and 1 (not 2: 1.5 > 1); 10 in none -> precision 1/2, density (2+0)/(1*2) = 1.
+    # coverage: reals 0 and 1 have a fake within radius 1 (0.5 away); 2 and 3 do not -> 1/2.
+    # recall: fake radii (k = 1) are 9.5 each; every real lies within 9.5 of 0.5 -> 1.
+    real = torch.tensor([[0.0], [1.0], [2.0], [3.0]])
+    fake = torch.tensor([[0.5], [10.0]])
+    torch.testing.assert_close(M.knn_radii(real, 1), torch.ones(4, dtype=torch.float64))
+    out = M.manifold_metrics(real, fake, k=1)
+    assert (out["precision"], out["recall"], out["density"], out["coverage"]) == (0.5, 1.0, 1.0, 0.5)
+    # per-point standard errors: precision terms (1, 0): std 0.7071 / sqrt(2) = 0.5 (hand arithmetic)
+    assert out["precision_se"] == pytest.approx(0.5)
+
+
+def test_manifold_metrics_second_hand_example_2d():
+    # 2D, k = 2 (hand arithmetic). real: (0,0), (1,0), (0,1), (5,5). Radii (2nd nearest other real): (0,0): 1;
+    # (1,0): sqrt2; (0,1): sqrt2; (5,5): |(5,5)-(1,0)| = sqrt41. fake: (0.5,0.5), (9,5), (20,20).
+    # (0.5,0.5): 0.707 from the first three (inside each: 0.707 <= 1, sqrt2) and 6.36 from (5,5) (<= 6.40: inside)
+    # -> 4 balls. (9,5): 4 from (5,5) -> inside; 9.0+ from the others (> radii) -> 1 ball. (20,20): 21.2 from (5,5)
+    # > 6.40 -> 0. precision 2/3, density (4+1+0)/(2*3) = 5/6.
+    # coverage: nearest fake to (0,0),(1,0),(0,1) is 0.707 away (inside); to (5,5) 4 (inside sqrt41) -> 1.
+    # recall: fake radii (2nd nearest other fake): (0.5,0.5): |(20,20)-(0.5,0.5)| = 27.6; (9,5): 19.0 (to (20,20));
+    # (20,20): 19.0 -> every real is within 27.6 of (0.5,0.5) -> 1.
+    real = torch.tensor([[0.0, 0.0], [1.0, 0.0], [0.0, 1.0], [5.0, 5.0]])
+    fake = torch.tensor([[0.5, 0.5], [9.0, 5.0], [20.0, 20.0]])
+    out = M.manifold_metrics(real, fake, k=2)
+    assert out["precision"] == pytest.approx(2 / 3)
+    assert out["density"] == pytest.approx(5 / 6)
+    assert out["coverage"] == 1.0 and out["recall"] == 1.0
+
+
+def test_manifold_metrics_match_dense_definitions():
+    # The papers' equations transcribed with scipy's dense distance matrix (scipy.spatial.distance.cdist), on random
+    # data in 3 and 20 dimensions (KD-tree and ball-tree paths).
+    from scipy.spatial.distance import cdist
+
+    for d in (3, 20):
+        x = np.random.default_rng(d).normal(size=(300, d))
+        y = np.random.default_rng(d + 1).normal(size=(250, d)) * 1.2 + 0.3
+        k = 5
+        dxx, dyy, dxy = cdist(x, x), cdist(y, y), cdist(x, y)
+        rx = np.sort(dxx, axis=1)[:, k]  # column 0 is the point itself
+        ry = np.sort(dyy, axis=1)[:, k]
+        inside = dxy <= rx[:, None]  # (real i, fake j)
+        ref = {"precision": inside.any(0).mean(), "density": inside.sum() / (k * len(y)),
+               "recall": (dxy <= ry[None, :]).any(1).mean(), "coverage": (dxy.min(1) <= rx).mean()}
+        out = M.manifold_metrics(torch.from_numpy(x), torch.from_numpy(y), k=k)
+        for name, v in ref.items():
+            assert out[name] == pytest.approx(v, abs=1e-12), (d, name)
+
+
+def test_manifold_metrics_separate_off_manifold_from_dropped_mode():
+    # Naeem et al. 2020, Sec. 3: density/precision fall with samples off the data; coverage/recall with dropped modes.
+    g = gen(40)
+    modes = torch.tensor([[-4.0, 0.0], [4.0, 0.0]])
+    real = modes[torch.randint(0, 2, (2000,), generator=g)] + 0.3 * torch.randn(2000, 2, generator=g)
+    exact = modes[torch.randint(0, 2, (2000,), generator=g)] + 0.3 * torch.randn(2000, 2, generator=g)
+    one_mode = modes[0] + 0.3 * torch.randn(2000, 2, generator=g)
+    off = exact.clone()
+    off[:400] = torch.tensor([0.0, 6.0]) + 0.3 * torch.randn(400, 2, generator=g)  # 20% far from any data
+    e, dropped, o = (M.manifold_metrics(real, s) for s in (exact, one_mode, off))
+    assert e["precision"] > 0.95 and e["coverage"] > 0.9
+    assert dropped["coverage"] < 0.55 and dropped["precision"] > 0.95  # half the data uncovered, samples on data
+    assert o["precision"] == pytest.approx(0.8, abs=0.02) and o["coverage"] > 0.9
+
+
+# ---------------------------------------------------------------------------- classifier two-sample test
+def test_c2st_exact_sets_within_binomial_interval():
+    # Lopez-Paz & Oquab 2017, Sec. 2: under P = Q the held-out accuracy is Binomial(n_test, 1/2) / n_test.
+    # 99.9% interval from scipy.stats.binom; each seed is an independent pair of exact sets.
+    for seed in range(3):
+        g = gen(50 + seed)
+        x, y = torch.randn(1500, 2, generator=g), torch.randn(1500, 2, generator=g)
+        out = M.classifier_two_sample(x, y, seed=seed)
+        lo, hi = scipy.stats.binom.interval(0.999, out["n_test"], 0.5)
+        assert lo / out["n_test"] <= out["acc"] <= hi / out["n_test"]
+        assert out["se"] == pytest.approx(math.sqrt(out["acc"] * (1 - out["acc"]) / out["n_test"]))
+
+
+def test_c2st_separated_sets_near_one_and_deterministic():
+    # Well-separated sets (means 10 sd apart): every held-out point is classified right (Lopez-Paz & Oquab 2017:
+    # accuracy -> 1/2 + TV/2 = 1).
+    g = gen(53)
+    x, y = torch.randn(800, 2, generator=g), torch.randn(600, 2, generator=g) + 10.0
+    out = M.classifier_two_sample(x, y)
+    assert out["acc"] > 0.99 and out["n_test"] == 1400
+    assert M.classifier_two_sample(x, y) == out  # no training randomness: same data, same seed, same answer
+
+
+def test_c2st_sees_a_shift_a_tenth_of_the_sd():
+    # Bayes accuracy for N(0,1) vs N(0.5,1) in 1 of 2 dims: 1/2 + TV/2 = Phi(0.25) = 0.599 (normal CDF, scipy);
+    # a k-NN vote reaches part of it: clearly above 1/2 by many se, below the Bayes limit.
+    g = gen(54)
+    x, y = torch.randn(3000, 2, generator=g), torch.randn(3000, 2, generator=g) + torch.tensor([0.5, 0.0])
+    out = M.classifier_two_sample(x, y)
+    bayes = scipy.stats.norm.cdf(0.25)
+    assert 0.5 + 4 * out["se"] < out["acc"] < bayes + 2 * out["se"]
+
+
+# ------------------------------------------------------------------------------------- multi-scale MMD
+def test_mmd2_multiscale_matches_gaussian_closed_form_at_each_bandwidth():
+    # Closed form of E k for Gaussians (expected_rbf above; Gretton et al. 2012, Lemma 6 for MMD^2) at 4 bandwidths,
+    # from 1/8 to 2 of the unit scale; the multi-scale call must also equal mmd2_rbf bandwidth by bandwidth.
+    d, s1, s2 = 2, 1.0, 1.3
+    shift = torch.tensor([0.6, 0.0], dtype=torch.float64)
+    hs = [0.125, 0.5, 1.0, 2.0]
+    truth = [expected_rbf(0.0, 2 * s1**2, h, d) + expected_rbf(0.0, 2 * s2**2, h, d)
+             - 2 * expected_rbf(float(shift @ shift), s1**2 + s2**2, h, d) for h in hs]
+    g = gen(60)
+    draws = [(s1 * torch.randn(400, d, generator=g, dtype=torch.float64),
+              shift + s2 * torch.randn(300, d, generator=g, dtype=torch.float64)) for _ in range(30)]
+    est = torch.tensor([M.mmd2_multiscale(x, y, hs) for x, y in draws])
+    x, y = draws[0]
+    assert M.mmd2_multiscale(x, y, hs) == pytest.approx([M.mmd2_rbf(x, y, h) for h in hs], rel=1e-10, abs=1e-14)
+    for j, h in enumerate(hs):
+        se = float(est[:, j].std() / math.sqrt(len(est)))
+        assert truth[j] > 5 * se, h
+        assert abs(float(est[:, j].mean()) - truth[j]) < 4 * se, h

@@ -232,3 +232,22 @@ def test_consistency_stages_continue_the_student_and_keep_the_teacher(tmp_path, 
         assert net.keys() == {k.split("net.", 1)[1] for k in saved}, folder
         for k, v in saved.items():
             assert torch.equal(net[k.split("net.", 1)[1]], v), (folder, k)
+
+
+def test_eval_detect_sizes_the_evaluation_to_the_target(tmp_path):
+    # eval.detect: a pilot on exact data at eval.samples measures the panel's standard errors; a mean's se falls as
+    # 1/sqrt(n) (textbook), so at the size chosen the smallest detectable worsening z sqrt2 se must be at about the
+    # target. Checked by scoring exact data again at that size (another draw): within 25% of the target.
+    import math
+
+    from distillrun import evaluate, stopping
+
+    cfg = make_cfg(tmp_path, "eval.samples=512", "eval.detect=0.008")
+    data = pipeline.load_data(cfg)
+    n = pipeline.evaluation_size(cfg, data)
+    assert n > 512 and n % 256 == 0
+    bench = evaluate.make_bench(data, n, 16, 5, 99, cond_needed=False)
+    q = evaluate.quality(bench, bench.floor_set)
+    detect = max(cfg.stop.z * math.sqrt(2) * q[f"{m}_se"] for m in stopping.rule_metrics(cfg.stop))
+    assert 0.75 * 0.008 < detect < 1.25 * 0.008
+    assert pipeline.evaluation_size(make_cfg(tmp_path, "eval.samples=512"), data) == 512  # no target: as configured

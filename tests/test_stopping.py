@@ -6,7 +6,7 @@ import math
 
 import pytest
 
-from distillrun.stopping import FAILED, OVER, WITHIN, choose, judge, limit_for
+from distillrun.stopping import FAILED, OVER, WITHIN, choose, judge, judge_panel, limit_for
 
 
 def test_limits():
@@ -90,3 +90,95 @@ def test_choose_picks_fewest_steps_within():
 def test_choose_none_when_nothing_passes():
     assert choose([_stage(1, 8, OVER), _stage(2, 4, FAILED)]) is None
     assert choose([]) is None
+
+
+# ------------------------------------------------------------------------- metrics where higher is better
+@pytest.mark.parametrize("q,verdict", [(0.951, WITHIN), (0.949, OVER)])
+def test_higher_is_better_metric_limit_lies_below_the_teacher(q, verdict):
+    # precision: a share that falls when quality is lost (Kynkaenniemi et al. 2019). Teacher 0.97, absolute
+    # tolerance 0.02 -> limit 0.95 (hand arithmetic); no se: over below it.
+    v = judge({"precision": q}, {"precision": 0.97}, "precision", 0.02, "absolute", z=2.0)
+    assert v.verdict == verdict and v.limit == pytest.approx(0.95)
+    assert v.margin == pytest.approx(q - 0.95)
+
+
+def test_higher_is_better_relative_limit_and_slack():
+    # relative: 0.97 (1 - 0.1) = 0.873; se = hypot(0.003, 0.004) = 0.005; over only if q + 2 se < 0.873.
+    t = {"coverage": 0.97, "coverage_se": 0.004}
+    assert judge({"coverage": 0.864, "coverage_se": 0.003}, t, "coverage", 0.1, "relative", 2.0).verdict == WITHIN
+    assert judge({"coverage": 0.862, "coverage_se": 0.003}, t, "coverage", 0.1, "relative", 2.0).verdict == OVER
+
+
+def test_seen_counts_standard_errors_of_worsening():
+    # seen = worsening / combined se: precision 0.97 -> 0.94 with se hypot(0.003, 0.004) = 0.005 is 6 se worse;
+    # sw2 0.10 -> 0.09 (better) is -2 se. detectable = z * se.
+    v = judge({"precision": 0.94, "precision_se": 0.003}, {"precision": 0.97, "precision_se": 0.004}, "precision",
+              0.02, "absolute", 2.0)
+    assert v.seen == pytest.approx(6.0) and v.detectable == pytest.approx(0.01)
+    w = judge({"sw2": 0.09, "sw2_se": 0.003}, {"sw2": 0.10, "sw2_se": 0.004}, "sw2", 0.5, "relative", 2.0)
+    assert w.seen == pytest.approx(-2.0)
+
+
+# ------------------------------------------------------------------------------- the panel and its decider
+TEACHER = {"precision": 0.97, "precision_se": 0.0, "coverage": 0.96, "coverage_se": 0.0, "c2st": 0.50, "c2st_se": 0.0}
+PANEL = ["precision", "coverage", "c2st"]
+
+
+def _q(**changes):
+    q = dict(TEACHER)
+    q.update(changes)
+    return q
+
+
+def test_panel_over_names_the_metric_that_is_over():
+    # tolerance 0.02: coverage 0.93 < 0.96 - 0.02 = 0.94 -> over; precision and c2st untouched.
+    v = judge_panel(_q(coverage=0.93), TEACHER, PANEL, 0.02, z=2.0)
+    assert v.verdict == OVER and v.metric == "coverage"
+    assert v.limit == pytest.approx(0.94) and v.value == pytest.approx(0.93)
+    assert v.panel["precision"]["verdict"] == WITHIN and v.panel["coverage"]["verdict"] == OVER
+    assert "decided by coverage" in v.reason
+
+
+def test_panel_decider_is_the_furthest_over():
+    # tolerance 0.02. precision 0.94: 0.01 below its limit 0.95; c2st 0.535: 0.015 above its limit 0.52;
+    # coverage 0.91: 0.03 below its limit 0.94 -> coverage decides (hand arithmetic).
+    v = judge_panel(_q(precision=0.94, c2st=0.535, coverage=0.91), TEACHER, PANEL, 0.02, z=0.0)
+    assert v.verdict == OVER and v.metric == "coverage" and v.margin == pytest.approx(-0.03)
+    # without coverage's loss, c2st (0.015 over) beats precision (0.01 over)
+    v = judge_panel(_q(precision=0.94, c2st=0.535), TEACHER, PANEL, 0.02, z=0.0)
+    assert v.metric == "c2st" and v.margin == pytest.approx(-0.015)
+
+
+def test_panel_within_names_the_metric_closest_to_its_limit():
+    # all within: precision 0.96 (0.01 left of 0.02), coverage 0.955 (0.015 left), c2st 0.505 (0.015 left)
+    # -> precision is the binding one.
+    v = judge_panel(_q(precision=0.96, coverage=0.955, c2st=0.505), TEACHER, PANEL, 0.02, z=0.0)
+    assert v.verdict == WITHIN and v.metric == "precision"
+    assert v.margin == pytest.approx(0.01)
+
+
+def test_panel_failed_metric_fails_the_stage():
+    v = judge_panel(_q(coverage=math.nan), TEACHER, PANEL, 0.02, z=2.0)
+    assert v.verdict == FAILED and v.metric == "coverage"
+
+
+def test_panel_slack_of_z_se_per_metric():
+    # precision 0.945 is 0.005 under its limit 0.95; with se hypot(0.002, 0.002) = 0.00283, z = 2 gives 0.00566
+    # slack -> within; z = 1 -> over.
+    t = dict(TEACHER, precision_se=0.002)
+    q = _q(precision=0.945, precision_se=0.002)
+    assert judge_panel(q, t, PANEL, 0.02, z=2.0).verdict == WITHIN
+    assert judge_panel(q, t, PANEL, 0.02, z=1.0).verdict == OVER
+
+
+def test_power_warning_when_tolerance_below_detectable():
+    # detectable ~ z sqrt2 se_teacher = 2 * 1.414 * 0.01 = 0.0283 > 0.02: warn, and name the size that resolves it:
+    # n (0.0283 / 0.02)^2 = 4096 * 2 = 8192 (se ~ 1/sqrt(n)). coverage (se 0.005: 0.0141 < 0.02) gets no line.
+    from types import SimpleNamespace
+
+    from distillrun.stopping import power_warnings
+
+    stop = SimpleNamespace(metric="panel", panel=["precision", "coverage"], z=2.0, mode="absolute", tolerance=0.02)
+    lines = power_warnings({"precision": 0.97, "precision_se": 0.01, "coverage": 0.96, "coverage_se": 0.005}, stop,
+                           4096)
+    assert len(lines) == 1 and "precision" in lines[0] and "eval.samples=8192 would" in lines[0]

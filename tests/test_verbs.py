@@ -105,6 +105,32 @@ def test_progressive_draw_equals_ddim_of_a_hand_rebuilt_network(runs, tmp_path, 
     torch.testing.assert_close(torch.from_numpy(np.load(tmp_path / "x.npy")), expected, rtol=0, atol=1e-6)
 
 
+def test_draw_stage_0_is_the_teacher_at_full_steps_as_a_hand_rebuilt_network(runs, tmp_path):
+    # The teacher from teacher/weights.safetensors, rebuilt by hand and sampled with samplers.sample (DDIM, Song et
+    # al. 2021) at teacher.steps on the same noise.
+    run = runs["progressive"]
+    cfg = OmegaConf.load(run / "config.yaml")
+    meta = json.loads((run / "teacher" / "model.json").read_text())
+    net = TimeMLP(dim=2, **meta["net"]["kwargs"])
+    net.load_state_dict({k.removeprefix("net."): v for k, v in load_file(str(run / "teacher" / "weights.safetensors")).items()})
+    teacher = NetDenoiser(net, meta["parameterization"], Schedule(meta["schedule"]))
+    noise = torch.randn((64, 2), generator=torch.Generator().manual_seed(5))
+    expected = sample(teacher, noise, uniform_grid(cfg.teacher.steps), cfg.teacher.sampler)
+    draw(run, "--stage", 0, "--count", 64, "--seed", 5, "--out", tmp_path / "t.npy")
+    torch.testing.assert_close(torch.from_numpy(np.load(tmp_path / "t.npy")), expected, rtol=0, atol=1e-6)
+    assert (tmp_path / "t.png").exists()
+
+
+def test_draw_beside_teacher_puts_a_second_panel_in_the_picture(runs, tmp_path):
+    # Two panels side by side: the picture is about twice as wide as the single one (matplotlib's PNG reader).
+    run = runs["progressive"]
+    draw(run, "--stage", 2, "--count", 64, "--seed", 5, "--out", tmp_path / "one.npy")
+    draw(run, "--stage", 2, "--count", 64, "--seed", 5, "--beside-teacher", "--out", tmp_path / "two.npy")
+    one, two = mpimg.imread(tmp_path / "one.png"), mpimg.imread(tmp_path / "two.png")
+    assert 1.7 < two.shape[1] / one.shape[1] < 2.3
+    assert np.array_equal(np.load(tmp_path / "one.npy"), np.load(tmp_path / "two.npy"))  # the stage's samples alone
+
+
 @pytest.mark.parametrize("method", ["progressive", "consistency"])
 def test_default_draw_repeats_the_samples_the_stage_was_scored_on(runs, method, tmp_path):
     run = runs[method]
@@ -114,7 +140,7 @@ def test_default_draw_repeats_the_samples_the_stage_was_scored_on(runs, method, 
                                 cfg.eval.seed, cond_needed=False)
     again = evaluate.quality(bench, torch.from_numpy(np.load(tmp_path / "x.npy")))
     scored = json.loads((run / "stage-01" / "metrics.json").read_text())["metrics"]
-    for name in ("sw2", "mmd2", "nll_gap"):
+    for name in ("sw2", "mmd2", "nll_gap", "precision", "coverage", "c2st", "mmd2_div16"):
         assert again[name] == pytest.approx(scored[f"quality/{name}"], rel=1e-9, abs=1e-12)
 
 
@@ -122,12 +148,15 @@ def test_default_draw_repeats_the_samples_the_stage_was_scored_on(runs, method, 
 def test_compare_prints_a_row_per_stage_and_writes_plots(runs, tmp_path, capsys):
     assert verbs.main("compare", [str(runs["progressive"]), str(runs["consistency"]), "--out", str(tmp_path)]) == 0
     out = capsys.readouterr().out
+    # the default metric: the first run's stop metric (the metric that decided its last judged stage)
+    metric = json.loads((runs["progressive"] / "summary.json").read_text())["stop_metric"]
+    assert f"{metric} ± se" in out
     for label, run in (("prog", runs["progressive"]), ("cons", runs["consistency"])):
         summary = json.loads((run / "summary.json").read_text())
         rows = [line.split() for line in out.splitlines() if line.startswith(label + " ")]
         assert [r[2] for r in rows] == ["teacher"] + [str(s["index"]) for s in summary["stages"]]
         for row, s in zip(rows[1:], summary["stages"]):
-            assert row[3] == str(s["steps"]) and row[4] == format(s["metrics"]["quality/sw2"], ".4g")
+            assert row[3] == str(s["steps"]) and row[4] == format(s["metrics"][f"quality/{metric}"], ".4g")
     for name in ("compare_quality.png", "compare_divergence.png", "compare_samples.png"):
         assert mpimg.imread(tmp_path / name).shape[0] > 100
 
@@ -185,3 +214,19 @@ def test_console_script_exit_code(tmp_path):
     done = subprocess.run([sys.executable, "-c", "from distillrun.cli import main; main()", "draw",
                            str(tmp_path / "missing")], capture_output=True, text=True)
     assert done.returncode == 2 and done.stderr.count("\n") == 1 and "no such folder" in done.stderr
+
+
+# ---------------------------------------------------------------------------------------- sample pictures
+def test_scatter_limits_fit_data_and_samples_and_count_what_falls_outside():
+    # Axes from the pooled 0.2%..99.8% quantiles (torch.quantile) widened by 8% of the span: a component far from
+    # [-3, 3] is inside, a single wild sample is outside and counted.
+    from distillrun import report
+
+    g = torch.Generator().manual_seed(0)
+    data = torch.randn(1000, 2, generator=g)
+    far = torch.randn(1000, 2, generator=g) * 0.1 + torch.tensor([8.0, -6.0])  # a component off the old fixed axes
+    samples = torch.cat([far, torch.tensor([[1e4, 1e4]])])
+    xlim, ylim = report.scatter_limits(data, samples)
+    assert xlim[0] < -2.5 and xlim[1] > 8.0 and ylim[0] < -6.0 and ylim[1] > 2.5
+    assert report.outside(samples, xlim, ylim) == 1
+    assert report.outside(far, xlim, ylim) == 0
