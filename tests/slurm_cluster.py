@@ -1,11 +1,14 @@
-"""A private single-node SLURM cluster for the slow tests: munged, slurmctld and slurmd from Debian's packages
-(tests/setup_slurm.sh installs them), every file they touch (config, munge key and socket, pid files, spool
-and state folders, logs) inside one temporary folder, on free loopback ports.
+"""A private single-node SLURM cluster for the slow tests: munged, MariaDB, slurmdbd, slurmctld and slurmd from
+Debian's packages (tests/setup_slurm.sh installs them), every file they touch (configs, munge key and socket,
+database, pid files, spool and state folders, logs) inside one temporary folder, on free loopback ports.
 
-Setup follows SLURM's own slurm.conf(5) and munged(8) manual pages: proctrack/linuxproc, task/none, no
-accounting, no cgroups, both SLURM daemons as root, one node named after `hostname -s` with the CPUs and
-memory `slurmd -C` reports. Every daemon runs in the foreground as a child of this process, so the ids it
-stops are the ids it started; nothing is ever stopped by name.
+Setup follows SLURM's own slurm.conf(5), slurmdbd.conf(5) and munged(8) manual pages: proctrack/linuxproc,
+task/none, no cgroups, all daemons as root, one node named after `hostname -s` with the CPUs and memory
+`slurmd -C` reports. Job accounting (slurmdbd over a private MariaDB) is on because submitit, under Hydra's
+SLURM launcher, learns a job's end from `sacct`: without it a job that dies before writing its result
+(failed, cancelled, killed) is never seen to finish and the sweep waits forever.
+Every daemon runs in the foreground as a child of this process, so the ids it stops are the ids it started;
+nothing is ever stopped by name.
 """
 from __future__ import annotations
 
@@ -18,7 +21,8 @@ import time
 from pathlib import Path
 
 SETUP = Path(__file__).with_name("setup_slurm.sh")
-BINARIES = ("munged", "slurmctld", "slurmd", "sinfo", "sbatch", "squeue", "scancel", "sacct")
+BINARIES = ("munged", "slurmctld", "slurmd", "slurmdbd", "sinfo", "sbatch", "squeue", "scancel", "sacct", "sacctmgr",
+            "mariadbd", "mariadb-install-db")
 
 
 class ClusterUnavailable(Exception):
@@ -31,6 +35,12 @@ def free_port() -> int:
         return s.getsockname()[1]
 
 
+def listening(port: int) -> bool:
+    with socket.socket() as s:
+        s.settimeout(0.5)
+        return s.connect_ex(("127.0.0.1", port)) == 0
+
+
 def ensure_installed() -> None:
     """Install the Debian packages where a binary is missing, or say why that cannot happen."""
     if os.name != "posix" or os.geteuid() != 0:
@@ -40,7 +50,7 @@ def ensure_installed() -> None:
     res = subprocess.run(["bash", str(SETUP)], capture_output=True, text=True)
     if res.returncode != 0 or not all(shutil.which(b) for b in BINARIES):
         why = (res.stderr.strip().splitlines() or ["binaries still missing after install"])[-1]
-        raise ClusterUnavailable(f"could not install slurmctld/slurmd/slurm-client/munge: {why}")
+        raise ClusterUnavailable(f"could not install the SLURM, munge and MariaDB packages: {why}")
 
 
 def node_line() -> str:
@@ -63,6 +73,7 @@ class SlurmCluster:
         self.host = socket.gethostname().split(".")[0]
         self.conf = self.root / "slurm.conf"
         self.munge_socket = self.root / "munge" / "munge.socket"
+        # SLURM_CONF for every client and daemon; slurmdbd reads slurmdbd.conf from the same folder.
         self.env = {**os.environ, "SLURM_CONF": str(self.conf)}
         for var in [k for k in self.env if k.startswith(("SLURM_", "SBATCH_", "SALLOC_", "SRUN_"))]:
             if var != "SLURM_CONF":
@@ -70,12 +81,31 @@ class SlurmCluster:
 
     def write_config(self) -> None:
         r = self.root
-        for d in ("munge", "state", "spool", "log"):
+        for d in ("munge", "state", "spool", "log", "db"):
             (r / d).mkdir(parents=True, exist_ok=True)
         os.chmod(r / "munge", 0o755)  # munged wants its socket folder searchable by all
         key = r / "munge" / "munge.key"
         key.write_bytes(os.urandom(1024))
         os.chmod(key, 0o400)
+        self.db_port, self.dbd_port = free_port(), free_port()
+        dbd = r / "slurmdbd.conf"
+        dbd.write_text("\n".join([
+            "AuthType=auth/munge",
+            f"AuthInfo=socket={self.munge_socket}",
+            "DbdHost=localhost",
+            "DbdAddr=127.0.0.1",
+            f"DbdPort={self.dbd_port}",
+            "SlurmUser=root",
+            "StorageType=accounting_storage/mysql",
+            "StorageHost=127.0.0.1",
+            f"StoragePort={self.db_port}",
+            "StorageUser=root",
+            "StorageLoc=slurm_acct_db",
+            f"PidFile={r / 'slurmdbd.pid'}",
+            f"LogFile={r / 'log' / 'slurmdbd.log'}",
+            "",
+        ]))
+        os.chmod(dbd, 0o600)  # slurmdbd refuses a config others can read
         self.conf.write_text("\n".join([
             "ClusterName=distillrun-test",
             f"SlurmctldHost={self.host}(127.0.0.1)",
@@ -95,7 +125,10 @@ class SlurmCluster:
             "ProctrackType=proctrack/linuxproc",
             "TaskPlugin=task/none",
             "JobAcctGatherType=jobacct_gather/none",
-            "AccountingStorageType=accounting_storage/none",
+            "AccountingStorageType=accounting_storage/slurmdbd",
+            "AccountingStorageHost=127.0.0.1",
+            f"AccountingStoragePort={self.dbd_port}",
+            f"AccountingStoragePass={self.munge_socket}",  # the munge socket for talking to slurmdbd
             "JobCompType=jobcomp/none",
             "MpiDefault=none",
             "SwitchType=switch/none",
@@ -145,6 +178,21 @@ class SlurmCluster:
                                f"--key-file={m / 'munge.key'}", f"--pid-file={m / 'munged.pid'}",
                                f"--log-file={self.root / 'log' / 'munged.log'}", f"--seed-file={m / 'munged.seed'}"])
         self._wait("munge socket", self.munge_socket.exists, deadline)
+        db = self.root / "db"
+        init = subprocess.run(["mariadb-install-db", "--no-defaults", f"--datadir={db / 'data'}", "--user=root",
+                               "--skip-test-db", "--auth-root-authentication-method=normal"],
+                              capture_output=True, text=True, env=self.env)
+        if init.returncode:
+            raise RuntimeError(f"mariadb-install-db failed: {init.stderr.strip()[-500:]}")
+        self._spawn("mariadbd", ["mariadbd", "--no-defaults", f"--datadir={db / 'data'}", "--user=root",
+                                 "--bind-address=127.0.0.1", f"--port={self.db_port}", f"--socket={db / 'mysqld.sock'}",
+                                 f"--pid-file={db / 'mariadbd.pid'}", "--skip-name-resolve", "--skip-grant-tables",
+                                 "--innodb-buffer-pool-size=32M",
+                                 "--innodb-lock-wait-timeout=900", f"--log-error={self.root / 'log' / 'mariadbd.log'}"])
+        self._wait("MariaDB on its port", lambda: listening(self.db_port), deadline)
+        self._spawn("slurmdbd", ["slurmdbd", "-D"])
+        self._wait("slurmdbd on its port", lambda: listening(self.dbd_port), deadline)
+        self.run("sacctmgr", "-i", "add", "cluster", "distillrun-test")
         # -D foreground, -i ignore saved state from elsewhere; -f our config for both daemons.
         self._spawn("slurmctld", ["slurmctld", "-D", "-i", "-f", str(self.conf)])
         self._spawn("slurmd", ["slurmd", "-D", "-f", str(self.conf), "-N", self.host])
@@ -153,7 +201,10 @@ class SlurmCluster:
         return self
 
     def run(self, *argv: str, check: bool = True, timeout: float = 30) -> subprocess.CompletedProcess:
-        return subprocess.run(argv, env=self.env, capture_output=True, text=True, check=check, timeout=timeout)
+        res = subprocess.run(argv, env=self.env, capture_output=True, text=True, timeout=timeout)
+        if check and res.returncode:
+            raise RuntimeError(f"{' '.join(argv)} exited with {res.returncode}: {res.stderr.strip()[-800:]}")
+        return res
 
     def node_state(self) -> str:
         res = self.run("sinfo", "-h", "-N", "-n", self.host, "-o", "%T", check=False, timeout=10)
@@ -181,7 +232,7 @@ class SlurmCluster:
                 end = time.monotonic() + 30
                 while self.jobs() and time.monotonic() < end:
                     time.sleep(0.2)
-        for name in ("slurmd", "slurmctld", "munged"):
+        for name in ("slurmd", "slurmctld", "slurmdbd", "mariadbd", "munged"):
             p = self.procs.get(name)
             if p is None or p.poll() is not None:
                 continue
