@@ -137,15 +137,18 @@ def test_sweep_of_two_tolerances_runs_as_two_jobs_with_two_pipelines_in_mlflow(s
     from mlflow import MlflowClient
 
     uri = f"sqlite:///{tmp_path / 'sweep.db'}"
+    # One run folder per point, named by the swept value: the form the template and README show.
     res = sweep(slurm, [*TINY, "teacher.steps=2", f"tracking.uri={uri}", f"tracking.artifacts={tmp_path / 'art'}",
-                        "stop.tolerance=0.5,1000"], tmp_path, label="sweep_two_points_s")
+                        f"run_dir={tmp_path / 'shared'}/tol-${{stop.tolerance}}", "stop.tolerance=0.5,1000"],
+                tmp_path, label="sweep_two_points_s")
     assert res.returncode == 0, res.stdout[-3000:]
     sweep_dir = only_sweep(tmp_path)
     states = settled(slurm, sweep_dir, 2)
     assert sorted(states.values()) == [("COMPLETED", "0:0")] * 2, states  # what SLURM itself recorded
-    for point in ("0", "1"):  # run folders: hydra.sweep.dir/<job number>, each a finished pipeline
-        assert (sweep_dir / point / "summary.json").is_file()
-        assert (sweep_dir / point / "stage-01" / "metrics.json").is_file()
+    assert sorted(d.name for d in (tmp_path / "shared").iterdir()) == ["tol-0.5", "tol-1000.0"]
+    for point in ("tol-0.5", "tol-1000.0"):  # each a finished pipeline
+        assert (tmp_path / "shared" / point / "summary.json").is_file()
+        assert (tmp_path / "shared" / point / "stage-01" / "metrics.json").is_file()
     client = MlflowClient(tracking_uri=uri)
     runs = client.search_runs([client.get_experiment_by_name("distillrun").experiment_id])
     parents = [r for r in runs if "mlflow.parentRunId" not in r.data.tags]
