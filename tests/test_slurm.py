@@ -41,7 +41,7 @@ TIMINGS: dict[str, float] = {}
 def node_sizes(tasks: int) -> list[str]:
     """The template is written for GPU nodes; this node has 2 CPUs, no GPUs and a few GB to spare."""
     return ["hydra.launcher.gpus_per_node=null", f"hydra.launcher.tasks_per_node={tasks}",
-            "hydra.launcher.cpus_per_task=1", "hydra.launcher.mem_gb=1", "hydra.launcher.timeout_min=20"]
+            "hydra.launcher.cpus_per_task=1", "hydra.launcher.mem_gb=1"]
 
 
 @pytest.fixture(scope="session")
@@ -212,6 +212,39 @@ def test_data_parallel_job_cancelled_mid_stage_resumes_when_resubmitted(slurm, t
     assert list(settled(slurm, second, 1).values()) == [("COMPLETED", "0:0")]
     assert (run_dir / "teacher" / "weights.safetensors").stat().st_mtime_ns == teacher_written  # reused, not redone
     assert not partial.exists()
+    assert_same_student(run_dir, reference)
+
+
+def test_a_job_warned_of_its_time_limit_is_requeued_and_resumes(slurm, tmp_path, reference):
+    # SLURM warns a job signal_delay_s before its time limit with SIGUSR2 to its steps (sbatch --signal, which
+    # submitit sets); here the test sends that same signal with scancel once stage 1 is under way, so the
+    # moment is exact. With a limit of at most 10 minutes submitit counts it as a timeout, requeues the job
+    # (the template's max_num_timeout allows it) and the requeued job resumes from the run folder. SLURM
+    # holds a requeued job for about two minutes before it may start again.
+    run_dir = tmp_path / "two"
+    t0 = time.monotonic()
+    p = submit(slurm, [*LONGER, "tracking=off", f"run_dir={run_dir}", "hydra.launcher.timeout_min=10"], tmp_path,
+               tasks=2)
+    partial = run_dir / "stage-01" / "partial.safetensors"
+    try:
+        while not partial.exists():
+            assert p.poll() is None, p.stdout.read()[-3000:]
+            assert time.monotonic() - t0 < 600, "stage 1 never started"
+            time.sleep(0.05)
+        job = slurm.jobs()
+        assert len(job) == 1, job
+        slurm.run("scancel", "--signal=USR2", job[0])
+        out, _ = p.communicate(timeout=900)
+    finally:
+        if p.poll() is None:
+            p.kill()
+    TIMINGS["time_limit_requeued_job_s"] = time.monotonic() - t0
+    assert p.returncode == 0, out[-3000:]
+    assert list(settled(slurm, only_sweep(tmp_path), 1).values()) == [("COMPLETED", "0:0")]
+    history = slurm.run("sacct", "-n", "-X", "-P", "-D", "-o", "JobID,State", "-j", job[0]).stdout.split()
+    assert history == [f"{job[0]}|REQUEUED", f"{job[0]}|COMPLETED"], history
+    logs = "".join(f.read_text() for f in (only_sweep(tmp_path) / ".submitit").glob("*/*_log.*"))
+    assert "this job is timed-out" in logs and "Requeued job" in logs
     assert_same_student(run_dir, reference)
 
 
