@@ -13,7 +13,6 @@ prints how long the bring-up, each job and the teardown took).
 """
 import os
 import shutil
-import signal
 import subprocess
 import sys
 import tempfile
