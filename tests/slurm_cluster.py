@@ -136,7 +136,9 @@ class SlurmCluster:
             "SelectType=select/cons_tres",
             "SelectTypeParameters=CR_Core",
             "ReturnToService=2",
-            "KillWait=5",  # seconds between SIGTERM and SIGKILL when a job is cancelled
+            # Seconds between SIGTERM and SIGKILL when a job is cancelled. submitit ignores SIGTERM (it waits for
+            # SIGKILL or its own USR2), so a cancelled job runs on for this long: short, to stop mid-stage.
+            "KillWait=1",
             "MinJobAge=600",  # finished jobs stay visible to squeue/scontrol for the test's checks
             "SlurmctldTimeout=30",
             "SlurmdTimeout=30",
