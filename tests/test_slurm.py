@@ -191,9 +191,13 @@ def test_data_parallel_job_cancelled_mid_stage_resumes_when_resubmitted(slurm, t
         while not partial.exists():  # the first resume point of stage 1 is on disk: the stage is under way
             assert p.poll() is None, p.stdout.read()[-3000:]
             assert time.monotonic() - t0 < 600, "stage 1 never started"
-            time.sleep(0.05)
+            time.sleep(0.01)
         job = slurm.jobs()
         assert len(job) == 1, job
+        # Freeze the job's processes first (SLURM suspends with SIGSTOP), so that the stage cannot end in
+        # the seconds a cancellation takes: submitit ignores SIGTERM and waits for the SIGKILL after KillWait.
+        slurm.run("scontrol", "suspend", job[0])
+        assert not (run_dir / "stage-01" / "metrics.json").exists()  # stopped in the middle of stage 1
         slurm.run("scancel", job[0])
         out, _ = p.communicate(timeout=300)  # submitit learns the end from sacct
     finally:
@@ -203,7 +207,7 @@ def test_data_parallel_job_cancelled_mid_stage_resumes_when_resubmitted(slurm, t
     assert p.returncode != 0 and "CANCELLED" in out, out[-3000:]
     first = only_sweep(tmp_path)
     assert [s.split()[0] for s, _ in settled(slurm, first, 1).values()] == ["CANCELLED"]  # "CANCELLED by 0"
-    assert not (run_dir / "stage-01" / "metrics.json").exists()  # cancelled in the middle of stage 1
+    assert not (run_dir / "stage-01" / "metrics.json").exists()  # and it was not finished since
     teacher_written = (run_dir / "teacher" / "weights.safetensors").stat().st_mtime_ns
     res = sweep(slurm, args, tmp_path, tasks=2, label="resubmitted_job_s")
     assert res.returncode == 0, res.stdout[-3000:]
