@@ -22,7 +22,7 @@ from pathlib import Path
 import torch
 from omegaconf import DictConfig
 
-from . import checkpoint, distributed, evaluate, report, runfolder, stopping, training
+from . import checkpoint, distributed, evaluate, report, runfolder, stopping, threads, training
 from .data import load_dataset
 from .stages import StageSpec, method_for, teacher_sampler
 from .teachers import Teacher, import_teacher, prepare_teacher
@@ -156,6 +156,7 @@ def stage_record(cfg, spec: StageSpec, metrics: dict, result, eval_seconds: floa
     return {"index": spec.index, "steps": spec.steps, "teacher_steps": spec.teacher_steps, "method": cfg.method.name,
             "iterations": len(result.losses), "failed": result.failed, "metrics": metrics,
             "seconds": {"train": result.seconds, "eval": eval_seconds}, "its_per_s": result.its_per_s,
+            "threads": threads.last_summary() or str(cfg.compute.threads),
             "final_loss": result.losses[-1] if result.losses else math.nan}
 
 
@@ -172,7 +173,13 @@ def attach_verdict(cfg, record: dict, reference: dict) -> dict:
 def run(cfg: DictConfig, recorder, recipe: str | None = None, data=None) -> dict:
     """Run (or resume) the whole pipeline; returns the summary written to summary.json.
     `data` is what preflight(cfg) returned, if the caller already ran it."""
-    torch.set_num_threads(cfg.compute.threads)
+    from .teachers import resolve_device
+
+    with threads.run_policy(cfg.compute.threads, probe=resolve_device(cfg.compute.device).type == "cpu"):
+        return _run_pipeline(cfg, recorder, recipe, data)
+
+
+def _run_pipeline(cfg: DictConfig, recorder, recipe: str | None, data) -> dict:
     torch.manual_seed(cfg.seed)
     data = data if data is not None else preflight(cfg)
     stages = plan_stages(cfg)

@@ -182,7 +182,9 @@ def draw_samples(model, meta: dict, cfg, count: int, seed: int, data_fn):
     run_cfg = OmegaConf.merge(cfg, {"eval": {"seed": seed}})
     if meta["method"] == "consistency":
         run_cfg.method.sigma_data = model.sigma_data  # resolved: the config may say null (= the data's std)
-    torch.set_num_threads(cfg.compute.threads)
+    from .threads import apply_setting
+
+    apply_setting(cfg.compute.threads, probe=False)  # auto: the cores this process may use
     sampler = stages.method_for(meta["method"]).sampler(run_cfg, model, meta["steps"])
     return evaluate.draw(sampler, SimpleNamespace(noise=noise, cond=cond))
 

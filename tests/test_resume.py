@@ -22,6 +22,7 @@ os.environ.setdefault("MLFLOW_DISABLE_TELEMETRY", "true")
 # 3 progressive stages (8 -> 4 -> 2 -> 1 steps), a resume point every 10 iterations, one torch thread.
 SMALL = ["teacher.iterations=60", "teacher.warmup=10", "teacher.steps=8", "method.iterations=20",
          "checkpoint_every=10", "eval.samples=256", "eval.bootstrap=5", "eval.projections=16", "compute.threads=1",
+         "compute.teacher_cache=false",  # these tests kill the teacher's training: it must not come from the cache
          "quiet=true", "data.n_train=4096", "net.width=32", "net.depth=2", "stop.tolerance=1000"]
 ENV = {**os.environ, "OMP_NUM_THREADS": "1", "MLFLOW_DISABLE_TELEMETRY": "true", "PYTHONWARNINGS": "ignore"}
 
