@@ -182,25 +182,30 @@ class AutoThreads:
     Call `begin()` right before and `end()` right after the timed part of every iteration. `clock` returns
     seconds; `apply(n)` sets the thread count (torch.set_num_threads); `on_choice(Choice)` hears each decision.
     Probe: per slot of the schedule 1..L, L..1 (`rounds` passes), `settle` untimed iterations after switching,
-    then timed ones until at least `burst_iters` iterations and `burst_seconds`. Watch: windows of at least
-    `window_iters` iterations and `window_seconds`; the first sets the baseline, a later one below
-    (1 - change) x baseline or above baseline / (1 - change) probes again, as does `recheck_seconds` of loop time
-    (None: never)."""
+    then timed ones until at least `burst_iters` iterations and `burst_seconds`. A candidate whose slot (settling
+    included) already took `give_up` times what the best finished candidate needs for as many iterations (at
+    least `burst_iters`) is hopeless: its slot ends at once and it leaves the later passes, as does any candidate
+    below 1 / `give_up` of the best rate after the first pass (under a busy competitor one 2-thread iteration can
+    cost ten 1-thread ones, so a full burst there would cost more than the choice gains).
+    Watch: windows of at least `window_iters` iterations and `window_seconds`; the first sets the baseline, a
+    later one below (1 - change) x baseline or above baseline / (1 - change) probes again, as does
+    `recheck_seconds` of loop time (None: never); a periodic re-check that keeps the count doubles that interval
+    (up to 8x), a change resets it."""
 
     def __init__(self, limit: int, label: str = "train", *, clock: Callable[[], float] = time.perf_counter,
                  apply: Callable[[int], None] | None = None, on_choice: Callable[[Choice], None] | None = None,
                  rounds: int = 2, settle: int = 1, burst_iters: int = 3, burst_seconds: float = 0.3,
                  window_iters: int = 10, window_seconds: float = 3.0, change: float = 0.35,
-                 recheck_seconds: float | None = 60.0):
+                 recheck_seconds: float | None = 60.0, give_up: float = 1.5):
         if apply is None:
             import torch
             apply = torch.set_num_threads
         self.limit, self.label, self.clock, self.apply, self.on_choice = max(1, int(limit)), label, clock, apply, on_choice
         self.rounds, self.settle, self.burst_iters, self.burst_seconds = rounds, settle, burst_iters, burst_seconds
         self.window_iters, self.window_seconds, self.change = window_iters, window_seconds, change
-        self.recheck_seconds = recheck_seconds
+        self.recheck_seconds, self._recheck, self.give_up = recheck_seconds, recheck_seconds, give_up
         self.choices: list[Choice] = []
-        self.threads = self.limit
+        self.threads = self.threads_chosen = self.limit
         self.iteration = 0  # iterations seen (begin/end pairs completed)
         self._t0: float | None = None
         self._since_choice = 0.0  # timed seconds since the last choice (for the periodic re-check)
@@ -213,16 +218,49 @@ class AutoThreads:
     def _start_probe(self, reason: str) -> None:
         order = candidates(self.limit)
         self._schedule = [n for r in range(self.rounds) for n in (order if r % 2 == 0 else order[::-1])]
-        self._slot, self._reason = 0, reason
+        self._round_end = len(order)  # slot index where the first pass ends
+        self._slot, self._reason, self._dropped = -1, reason, set()
         self._spent: dict[int, list[float]] = {n: [0.0, 0] for n in order}  # seconds, iterations
-        self._enter_slot()
+        self._next_slot()
 
-    def _enter_slot(self) -> None:
+    def _rates(self) -> dict[int, float]:
+        return {n: it / s if s > 0 else math.inf for n, (s, it) in self._spent.items() if it > 0}
+
+    def _next_slot(self) -> None:
+        self._slot += 1
+        if self._slot == self._round_end:  # after the first pass: drop the clearly slower candidates
+            rates = self._rates()
+            top = max(rates.values(), default=0.0)
+            self._dropped |= {n for n, r in rates.items() if r * self.give_up < top}
+        while self._slot < len(self._schedule) and self._schedule[self._slot] in self._dropped:
+            self._slot += 1
+        if self._slot >= len(self._schedule):
+            rates = self._rates()
+            best = max(rates, key=lambda n: (rates[n], -n))  # ties: fewer threads
+            self._choose(best, self._reason, rates)
+            return
         self.threads = self._schedule[self._slot]
         self.apply(self.threads)
-        self._settle_left, self._burst = self.settle, [0.0, 0]
+        self._settle_left, self._burst, self._slot_total = self.settle, [0.0, 0], [0.0, 0]
+
+    def _hopeless(self) -> bool:
+        """This slot already took `give_up` x what the fastest finished candidate needs for as many iterations."""
+        finished = [s / it for n, (s, it) in self._spent.items() if it > 0 and n != self.threads]
+        if not finished:
+            return False
+        seconds, iters = self._slot_total
+        return seconds > self.give_up * min(finished) * max(iters, self.burst_iters)
 
     def _probe_step(self, seconds: float) -> None:
+        self._slot_total[0] += seconds
+        self._slot_total[1] += 1
+        if self._hopeless():
+            spent = self._spent[self.threads]
+            spent[0] += self._slot_total[0]  # settling included: a lower bound of its cost, enough to rank it last
+            spent[1] += self._slot_total[1]
+            self._dropped.add(self.threads)
+            self._next_slot()
+            return
         if self._settle_left > 0:
             self._settle_left -= 1
             return
@@ -233,16 +271,14 @@ class AutoThreads:
         spent = self._spent[self.threads]
         spent[0] += self._burst[0]
         spent[1] += self._burst[1]
-        self._slot += 1
-        if self._slot < len(self._schedule):
-            self._enter_slot()
-            return
-        rates = {n: it / s if s > 0 else math.inf for n, (s, it) in self._spent.items()}
-        best = max(rates, key=lambda n: (rates[n], -n))  # ties: fewer threads
-        self._choose(best, self._reason, rates)
+        self._next_slot()
 
     # -- watch
     def _choose(self, n: int, reason: str, rates: dict) -> None:
+        if self.recheck_seconds is not None:  # a periodic re-check that changed nothing: look again less often
+            same = reason == "periodic" and n == self.threads_chosen
+            self._recheck = min(self._recheck * 2, 8 * self.recheck_seconds) if same else self.recheck_seconds
+        self.threads_chosen = n
         self._schedule = None
         self.threads = n
         self.apply(n)
@@ -268,7 +304,7 @@ class AutoThreads:
             self._start_probe("slower")
         elif rate * (1 - self.change) > self._baseline:
             self._start_probe("faster")
-        elif self.recheck_seconds is not None and self._since_choice >= self.recheck_seconds:
+        elif self._recheck is not None and self._since_choice >= self._recheck:
             self._start_probe("periodic")
 
     # -- the loop's hooks

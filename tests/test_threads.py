@@ -17,7 +17,7 @@ class FakeMachine:
     """Seconds per iteration for each thread count; `cost` can change mid-run (a competitor arrives)."""
 
     def __init__(self, cost: dict):
-        self.cost, self.now, self.threads, self.applied = dict(cost), 0.0, None, []
+        self.cost, self.now, self.threads, self.applied, self.iterations_at = dict(cost), 0.0, None, [], {}
 
     def clock(self) -> float:
         return self.now
@@ -33,7 +33,17 @@ class FakeMachine:
         for _ in range(iterations):
             gov.begin()
             self.now += self.cost[self.threads]
+            self.iterations_at[self.threads] = self.iterations_at.get(self.threads, 0) + 1
             gov.end()
+
+
+def test_a_hopeless_candidate_costs_one_iteration():
+    # one busy competitor on 2 cores: a 2-thread iteration can take 10x a 1-thread one; a full burst would cost more
+    # than the choice saves, so the chooser gives up on it after one iteration and does not time it again
+    m = FakeMachine({1: 0.030, 2: 0.300})
+    gov = m.chooser(2, recheck_seconds=None)
+    m.run(gov, 300)
+    assert m.threads == 1 and m.iterations_at[2] == 1
 
 
 @pytest.mark.parametrize("cost, best", [({1: 0.050, 2: 0.030}, 2),  # idle: 2 threads faster
@@ -91,8 +101,16 @@ def test_periodic_recheck_finds_a_freed_machine():
     assert m.threads == 2 and gov.choices[-1].reason == "periodic"
 
 
+def test_periodic_rechecks_back_off_while_nothing_changes():
+    m = FakeMachine({1: 0.030, 2: 0.110})
+    gov = m.chooser(2, recheck_seconds=10.0)
+    m.run(gov, 6000)  # 180 s of loop time: re-checks after ~10, 20, 40, 80 s, not 18 of them
+    periodic = [c for c in gov.choices if c.reason == "periodic"]
+    assert 2 <= len(periodic) <= 5 and all(c.threads == 1 for c in gov.choices)
+
+
 def test_probe_order_is_balanced():
-    m = FakeMachine({1: 0.05, 2: 0.03, 3: 0.02})
+    m = FakeMachine({1: 0.030, 2: 0.026, 3: 0.024})  # close: every candidate stays for the second pass
     m.run(m.chooser(3, recheck_seconds=None), 200)
     first = [n for i, n in enumerate(m.applied) if i == 0 or m.applied[i - 1] != n]
     assert first == [1, 2, 3, 2, 1, 3]  # 1..L, then L..1 (3 twice in a row), then the choice
