@@ -39,9 +39,8 @@ def child(setting: str, iterations: int) -> None:
     cfg, data, teacher, student, net, loss_fn, spec, batch = overhead.build(overhead.SCENARIOS["progressive-2d"])
     draw = data.batches(batch, torch.device("cpu"))
     count = setting if setting == "auto" else int(setting)
-    with threads.run_policy(count if count == "auto" else count, limit=None):
-        torch.set_num_threads(threads.core_limit() if count == "auto" else count)
-        overhead.stage_loop(student, loss_fn, draw, spec, 5, 0)  # pays the one-time imports (torch._dynamo)
+    torch.set_num_threads(threads.core_limit() if count == "auto" else count)
+    overhead.stage_loop(student, loss_fn, draw, spec, 5, 0)  # pays the one-time imports (torch._dynamo)
     with threads.run_policy(count) as policy:
         t0 = time.perf_counter()
         overhead.stage_loop(student, loss_fn, draw, spec, iterations, 1)
@@ -83,11 +82,11 @@ def main() -> None:
 
     settings = a.settings.split(",")
     if a.wait_policy:
-        settings += [f"{s}+{a.wait_policy}" for s in a.settings.split(",")]
+        settings += [f"{s}+{a.wait_policy}" for s in a.settings.split(",") if s != "1"]  # 1 thread: no waiting
     print(f"{threads.describe_machine()}")
     print(f"torch {torch.__version__}; {a.iterations} iterations of archipelago_progressive's stage loop per "
           f"measurement, {a.rounds} rounds; load average at start {os.getloadavg()[0]:.2f} "
-          f"(uptime: {' '.join(os.getloadavg().__repr__().split())})", flush=True)
+          f"(1, 5, 15 min: {', '.join(f'{x:.2f}' for x in os.getloadavg())})", flush=True)
     for scenario in a.scenarios.split(","):
         spinner = None
         if scenario == "busy":
