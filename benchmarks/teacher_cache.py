@@ -58,8 +58,8 @@ def main() -> None:
     from distillrun import threads
 
     print(threads.describe_machine())
-    print(f"{a.threads} thread(s); stages cut to {a.stage_iterations} iterations, eval.samples=1024; load average at "
-          f"start {os.getloadavg()[0]:.2f}", flush=True)
+    print(f"{a.threads} thread(s); stages cut to {a.stage_iterations} iterations, eval.samples=1024, eval.bootstrap=10; "
+          f"more overrides: {' '.join(a.extra) or 'none'}; load average at start {os.getloadavg()[0]:.2f}", flush=True)
     root = Path(tempfile.mkdtemp(prefix="distillrun-cache-bench-"))
     for name in a.sweeps.split(","):
         res = {False: [], True: []}
