@@ -218,9 +218,6 @@ def hydra_main() -> None:
 
 
 def main() -> None:
-    from .threads import prefer_passive_wait
-
-    prefer_passive_wait()  # before anything imports torch (its OpenMP runtime reads this once, at start)
     register_configs()
     if len(sys.argv) > 1 and sys.argv[1] in VERBS:
         from . import verbs

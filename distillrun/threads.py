@@ -394,21 +394,6 @@ def last_summary() -> str | None:
     return policy.last_summary() if policy is not None else None
 
 
-def prefer_passive_wait(env=None) -> bool:
-    """Set OMP_WAIT_POLICY=PASSIVE unless the user set it (their value wins); True when set here. With it, an
-    OpenMP thread that waits for its siblings sleeps at once instead of spinning, so on a machine shared with
-    other busy programs it hands its core to the sibling the scheduler had taken off the CPU
-    (benchmarks/auto_threads.py --wait-policy passive). The OpenMP runtime reads it once, when torch starts it:
-    it must be set before torch is imported, so only the command line entry point calls this, first thing."""
-    import sys
-
-    env = os.environ if env is None else env
-    if "OMP_WAIT_POLICY" in env or ("torch" in sys.modules and env is os.environ):
-        return False
-    env["OMP_WAIT_POLICY"] = "PASSIVE"
-    return True
-
-
 def is_auto(setting) -> bool:
     return setting == AUTO
 

@@ -216,22 +216,3 @@ def test_cli_refuses_a_bad_thread_count(capsys):
     assert e.value.code == 2
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and err[0].startswith("distillrun: error: compute.threads=0")
-
-
-def test_passive_wait_policy_unless_the_user_chose_one():
-    env = {}
-    assert threads.prefer_passive_wait(env) and env["OMP_WAIT_POLICY"] == "PASSIVE"
-    env = {"OMP_WAIT_POLICY": "ACTIVE"}
-    assert not threads.prefer_passive_wait(env) and env["OMP_WAIT_POLICY"] == "ACTIVE"
-
-
-def test_cli_sets_the_wait_policy_before_torch_starts():
-    import subprocess
-    import sys
-
-    code = ("import os, sys; from distillrun import cli; sys.argv = ['distillrun', 'recipes']; "
-            "import distillrun.verbs as v; v.main = lambda *a: (print(os.environ.get('OMP_WAIT_POLICY'), "
-            "'torch' in sys.modules), 0)[1]; cli.main()")
-    env = {k: v for k, v in __import__("os").environ.items() if k != "OMP_WAIT_POLICY"}
-    out = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True, text=True)
-    assert out.stdout.split() == ["PASSIVE", "False"], out.stderr[-2000:]
