@@ -114,6 +114,7 @@ def run_job(cfg) -> int:
 
     try:
         validate(cfg)
+        share_cores_with_sweep()
         join_ranks(cfg)
         if cfg.run_dir is None:
             from hydra.core.hydra_config import HydraConfig
@@ -172,6 +173,24 @@ def join_ranks(cfg) -> None:
         OmegaConf.set_struct(cfg, False)
         cfg.tracking.enabled, cfg.quiet = False, True
         OmegaConf.set_struct(cfg, True)
+
+
+def share_cores_with_sweep() -> None:
+    """Under the parallel sweep launcher (joblib), compute.threads=auto splits the cores among the jobs that
+    run at once (its n_jobs); torchrun's ranks are counted from LOCAL_WORLD_SIZE in threads.core_limit."""
+    from hydra.core.hydra_config import HydraConfig
+    from hydra.types import RunMode
+    from omegaconf import OmegaConf
+
+    from . import threads
+
+    if not HydraConfig.initialized():
+        return
+    hc = HydraConfig.get()
+    if hc.mode != RunMode.MULTIRUN:
+        return
+    launcher = OmegaConf.to_container(hc.launcher, resolve=True) if hc.get("launcher") is not None else None
+    threads.set_sweep_jobs(threads.joblib_jobs(launcher))
 
 
 def failed_stage_line(cfg, summary: dict) -> str:

@@ -100,8 +100,12 @@ class TrackingConfig:
 class ComputeConfig:
     device: str = "cpu"  # cpu | cuda | auto
     precision: str = "fp32"  # fp32 | bf16 (autocast, CUDA only)
-    threads: int = 2  # torch intra-op threads; 1 per worker when several processes share the cores
+    # torch intra-op threads: auto = the count that trains fastest, timed on the training loop itself at each
+    # loop start and when its speed changes (distillrun/threads.py); an integer N = exactly N threads
+    threads: Any = "auto"
     compile: bool = False  # torch.compile the networks
+    teacher_cache: bool = True  # reuse a trained teacher with the same data, network, settings, seed and code
+    cache_dir: Optional[str] = None  # teacher cache folder; None: $DISTILLRUN_CACHE_DIR or ~/.cache/distillrun
 
 
 @dataclass
@@ -200,7 +204,7 @@ def validate(cfg: DictConfig) -> None:
     if not cfg.net.mults or any(m < 1 for m in cfg.net.mults):
         raise ConfigError("net.mults", list(cfg.net.mults), "must be a non-empty list of multipliers >= 1, e.g. [1, 2]")
     _positive(cfg, ["data.n_train", "teacher.steps", "teacher.iterations", "teacher.batch_size", "teacher.lr",
-                    "eval.samples", "eval.projections", "eval.bootstrap", "compute.threads", "checkpoint_every"])
+                    "eval.samples", "eval.projections", "eval.bootstrap", "checkpoint_every"])
     if not 0 <= cfg.teacher.ema_decay < 1:
         raise ConfigError("teacher.ema_decay", cfg.teacher.ema_decay, "must be in [0, 1)")
     if cfg.teacher.warmup < 0:
@@ -219,11 +223,20 @@ def validate(cfg: DictConfig) -> None:
         raise ConfigError("eval.detect", cfg.eval.detect, "must be a finite number > 0 or null")
     one_of("compute.device", cfg.compute.device, ("cpu", "cuda", "auto"))
     one_of("compute.precision", cfg.compute.precision, ("fp32", "bf16"))
+    _threads(cfg.compute.threads)
+    if cfg.compute.cache_dir and os.path.exists(cfg.compute.cache_dir) and not os.path.isdir(cfg.compute.cache_dir):
+        raise ConfigError("compute.cache_dir", cfg.compute.cache_dir, "is a file; give a folder (made if missing)")
     if cfg.compute.device == "cuda":
         import torch
 
         if not torch.cuda.is_available():
             raise ConfigError("compute.device", "cuda", "no CUDA device is visible; use cpu or auto")
+
+
+def _threads(value) -> None:
+    if value == "auto" or (isinstance(value, int) and not isinstance(value, bool) and value >= 1):
+        return
+    raise ConfigError("compute.threads", value, "must be auto (timed on the training loop) or a whole number >= 1")
 
 
 def _validate_stop(cfg: DictConfig, images: bool, known_density: bool) -> None:

@@ -24,7 +24,7 @@ from typing import Callable
 import torch
 from omegaconf import DictConfig
 
-from . import checkpoint, distributed, evaluate, report, runfolder, stopping
+from . import checkpoint, distributed, evaluate, report, runfolder, stopping, threads
 from .data import DATASETS, load_dataset
 from .methods import Method, StageJob, StageSpec, method_named
 from .nets import NETS, fast_layout, kind_for
@@ -199,6 +199,7 @@ def stage_record(cfg, spec: StageSpec, metrics: dict, result, eval_seconds: floa
     return {"index": spec.index, "steps": spec.steps, "teacher_steps": spec.teacher_steps, "method": cfg.method.name,
             "iterations": len(result.losses), "failed": result.failed, "metrics": metrics,
             "seconds": {"train": result.seconds, "eval": eval_seconds}, "its_per_s": result.its_per_s,
+            "threads": threads.last_summary() or str(cfg.compute.threads),
             "final_loss": result.losses[-1] if result.losses else math.nan}
 
 
@@ -229,7 +230,13 @@ class RunParts:
 def run(cfg: DictConfig, recorder, recipe: str | None = None, data=None) -> dict | None:
     """Run (or resume) the whole pipeline; returns the summary written to summary.json (None on ranks other
     than 0 under torchrun). `data` is what preflight(cfg) returned, if the caller already ran it."""
-    torch.set_num_threads(cfg.compute.threads)
+    from .teachers import resolve_device
+
+    with threads.run_policy(cfg.compute.threads, probe=resolve_device(cfg.compute.device).type == "cpu"):
+        return _run_pipeline(cfg, recorder, recipe, data)
+
+
+def _run_pipeline(cfg: DictConfig, recorder, recipe: str | None, data) -> dict | None:
     torch.manual_seed(cfg.seed)
     data = data if data is not None else preflight(cfg)
     stages = plan_stages(cfg)

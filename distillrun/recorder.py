@@ -83,6 +83,10 @@ class Recorder:
         self._save_ids()
 
     def teacher(self, teacher) -> None:
+        tags = {"distillrun.teacher_threads": getattr(teacher, "threads", None),
+                "distillrun.teacher_cache": getattr(teacher, "cache_note", None)}
+        if self.tracker.enabled and any(tags.values()):
+            self.tracker.set_tags({k: str(v)[:500] for k, v in tags.items() if v})
         if self.tracker.enabled and teacher.losses:
             self._log_curve("teacher/loss", teacher.losses)
             self._log_new({"teacher/train_seconds": teacher.seconds}, self.tracker.logged_metrics())
@@ -110,6 +114,8 @@ class Recorder:
         name += f" · attempt {attempt}" if attempt > 1 else ""
         params = {"method": record["method"], "stage": record["index"], "steps": record["steps"],
                   "teacher_steps": record["teacher_steps"], "iterations": record["iterations"]}
+        if record.get("threads"):  # the intra-op thread count(s) the stage trained with (compute.threads)
+            params["threads"] = str(record["threads"])[:500]
         resume = entry.get("run") or self.tracker.stage_runs().get(name)
         run_id = self.tracker.start_stage(name, params, resume_run_id=resume,
                                           tags={"distillrun.verdict": record["verdict"], "distillrun.rule": record["rule"],

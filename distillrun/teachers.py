@@ -12,7 +12,11 @@ import torch
 from torch import nn
 from omegaconf import OmegaConf
 
-from . import checkpoint, distributed, runfolder
+import contextlib
+import logging
+
+from . import checkpoint, distributed, runfolder, threads
+from .teacher_cache import TeacherCache, cache_root, key_document, key_of
 from .denoiser import NetDenoiser
 from .methods.teacher import denoising_loss, network_for, oracle_fit_loss
 from .nets import build_net
@@ -20,6 +24,7 @@ from .nets.oracle import OracleDenoiser
 from .schedule import Schedule
 from .training import LoopSpec, train_loop
 
+log = logging.getLogger(__name__)
 
 @dataclass
 class Teacher:
@@ -29,6 +34,8 @@ class Teacher:
     device: torch.device
     losses: list
     seconds: float
+    threads: str | None = None  # intra-op thread count(s) the teacher trained with (compute.threads)
+    cache_note: str | None = None  # "reused <key>" / "stored <key>" when the teacher cache was used
 
     @property
     def num_classes(self) -> int:
@@ -82,36 +89,79 @@ def prepare_teacher(cfg, data, run_dir) -> Teacher:
     if cfg.compute.compile:
         net.compile()  # in place: torch.compile of forward, same state_dict keys; students inherit it by copy
     oracle = OracleDenoiser(data.mixture, schedule) if cfg.teacher.source == "oracle" else None
-    losses, seconds = [], 0.0
     if (folder / "model.json").exists():
         meta = runfolder.load_model_into(den, folder)
         losses, seconds = meta.get("losses", []), meta.get("seconds", 0.0)
         if distributed.is_main():  # a kill came between model.json and this
             (folder / "partial.safetensors").unlink(missing_ok=True)
-    else:
-        folder.mkdir(parents=True, exist_ok=True)
-        t = cfg.teacher
-        spec = LoopSpec(iterations=t.iterations, lr=t.lr, warmup=t.warmup, decay="cosine", grad_clip=t.grad_clip,
-                        ema_decay=t.ema_decay, save_every=cfg.checkpoint_every, precision=cfg.compute.precision)
-        loss_fn = oracle_fit_loss(oracle) if oracle is not None else denoising_loss
-        draw = data.batches(t.batch_size, device)
-        g = torch.Generator().manual_seed(cfg.seed)
-        result = train_loop(den, loss_fn, draw, spec, generator=g, state_path=folder / "partial.safetensors",
-                            desc="teacher", quiet=cfg.quiet)
-        if result.failed:
-            raise TeacherTrainingFailed(f"teacher training failed: {result.failed}; lower teacher.lr (now {t.lr:g}) "
-                                        f"or teacher.grad_clip (now {t.grad_clip:g}), then rerun with fresh=true "
-                                        "or another run_dir")
-        den = result.model
-        losses, seconds = result.losses, result.seconds
-        meta = {"net": arch, "parameterization": t.parameterization, "schedule": t.schedule, "method": "teacher",
-                "stage": 0, "steps": t.steps, "source": t.source, "losses": losses, "seconds": seconds,
-                "its_per_s": result.its_per_s}
-        if distributed.is_main():  # under torchrun every rank trained the same weights; rank 0 writes them
-            checkpoint.save_model(folder, den.state_dict(), meta)
-            (folder / "partial.safetensors").unlink(missing_ok=True)
+        return _ready(cfg, oracle, den, arch, device, losses, seconds, data, meta.get("threads"), meta.get("cache_key"))
+    folder.mkdir(parents=True, exist_ok=True)
+    cache, key, document = _teacher_cache(cfg, data, arch, device)
+    note = None
+    # Under torchrun rank 0 decides (no lock: the ranks wait for each other at the broadcast).
+    lock = cache.locked(key) if cache is not None and distributed.world_size() <= 1 else contextlib.nullcontext()
+    with lock:
+        meta = cache.load(key, document, den) if cache is not None and distributed.is_main() else None
+        if cache is not None and distributed.share_flag(meta is not None if distributed.is_main() else None):
+            meta = meta or cache.load(key, document, den)
+            if meta is None:
+                raise checkpoint.CheckpointError(f"{cache.entry(key)}: rank 0 found this cached teacher, this rank "
+                                                 "cannot read it; run with compute.teacher_cache=false")
+            note = f"reused {key}"
+            log.info(f"teacher: reused the trained teacher cached in {cache.entry(key)} (same data, network, "
+                     f"teacher settings, seed and code; it took {meta.get('seconds', 0.0):.0f} s to train); "
+                     "compute.teacher_cache=false trains it anew")
+            meta = {**meta, "seconds": 0.0, "trained_seconds": meta.get("seconds", 0.0), "cache_key": note}
+            if distributed.is_main():  # the run folder gets its own copy: it stays complete without the cache
+                checkpoint.save_model(folder, den.state_dict(), meta)
+            return _ready(cfg, oracle, den, arch, device, meta.get("losses", []), 0.0, data, meta.get("threads"), note)
+        den, losses, seconds, used_threads = _train(cfg, data, oracle, den, arch, folder, device)
+        if cache is not None and distributed.is_main():
+            meta = checkpoint.read_json(folder / checkpoint.MODEL_FILE)
+            if cache.store(key, document, den.state_dict(), meta) is not None:
+                note = f"stored {key}"
+                log.info(f"teacher: trained and cached in {cache.entry(key)} for runs with the same data, network, "
+                         "teacher settings and seed")
+    return _ready(cfg, oracle, den, arch, device, losses, seconds, data, used_threads, note)
+
+
+def _teacher_cache(cfg, data, arch: dict, device):
+    """(cache, key, key document) for a teacher this run would train, or (None, None, None) when the cache is
+    off (compute.teacher_cache=false)."""
+    if not cfg.compute.get("teacher_cache", True):
+        return None, None, None
+    document = key_document(cfg, data, arch, device)
+    return TeacherCache(cache_root(cfg.compute.get("cache_dir"))), key_of(document), document
+
+
+def _ready(cfg, oracle, den, arch, device, losses, seconds, data, used_threads, note) -> Teacher:
     den.requires_grad_(False)
-    return Teacher(oracle if oracle is not None else den, den, arch, device, losses, seconds)
+    return Teacher(oracle if oracle is not None else den, den, arch, device, losses, seconds, used_threads, note)
+
+
+def _train(cfg, data, oracle, den, arch, folder, device):
+    """Train the teacher (resuming a mid-run state in folder), write it to folder; (den, losses, seconds, threads)."""
+    t = cfg.teacher
+    spec = LoopSpec(iterations=t.iterations, lr=t.lr, warmup=t.warmup, decay="cosine", grad_clip=t.grad_clip,
+                    ema_decay=t.ema_decay, save_every=cfg.checkpoint_every, precision=cfg.compute.precision)
+    loss_fn = oracle_fit_loss(oracle) if oracle is not None else denoising_loss
+    draw = data.batches(t.batch_size, device)
+    g = torch.Generator().manual_seed(cfg.seed)
+    result = train_loop(den, loss_fn, draw, spec, generator=g, state_path=folder / "partial.safetensors",
+                        desc="teacher", quiet=cfg.quiet)
+    if result.failed:
+        raise TeacherTrainingFailed(f"teacher training failed: {result.failed}; lower teacher.lr (now {t.lr:g}) "
+                                    f"or teacher.grad_clip (now {t.grad_clip:g}), then rerun with fresh=true "
+                                    "or another run_dir")
+    den = result.model
+    used_threads = threads.last_summary()
+    meta = {"net": arch, "parameterization": t.parameterization, "schedule": t.schedule, "method": "teacher",
+            "stage": 0, "steps": t.steps, "source": t.source, "losses": result.losses, "seconds": result.seconds,
+            "its_per_s": result.its_per_s, "threads": used_threads}
+    if distributed.is_main():  # under torchrun every rank trained the same weights; rank 0 writes them
+        checkpoint.save_model(folder, den.state_dict(), meta)
+        (folder / "partial.safetensors").unlink(missing_ok=True)
+    return den, result.losses, result.seconds, used_threads
 
 
 class TeacherTrainingFailed(RuntimeError):

@@ -17,7 +17,7 @@ from torch.optim.lr_scheduler import ConstantLR, CosineAnnealingLR, LinearLR, Se
 from torch.optim.swa_utils import AveragedModel
 from tqdm.auto import tqdm
 
-from . import checkpoint, distributed
+from . import checkpoint, distributed, threads
 
 # A clipped step is still taken when the gradient norm is large; only a norm this far beyond any
 # sane value ends the run as diverged (common practice: clip at ~1, treat 1e4x that as divergence).
@@ -172,10 +172,12 @@ def train_loop(model: nn.Module, loss_fn: Callable, draw_batch: Callable, spec: 
     if state_path is not None and Path(state_path).exists():
         start, losses = _restore(state_path, model, ema, opt, sched, generator)
     result = LoopResult(model=kept_model(ema), losses=losses)
+    pace = threads.governor(desc)  # compute.threads=auto: times these iterations to pick the thread count
     t0 = time.perf_counter()
     bar = tqdm(range(start, spec.iterations), desc=desc, initial=start, total=spec.iterations,
                disable=True if quiet else None, leave=False, dynamic_ncols=True)  # None: off when not a TTY
     for it in bar:
+        pace.begin()
         with autocast_for(model, spec.precision):
             loss = loss_fn(trained, kept_model(ema), draw_batch(generator), generator)
         opt.zero_grad(set_to_none=True)
@@ -189,6 +191,7 @@ def train_loop(model: nn.Module, loss_fn: Callable, draw_batch: Callable, spec: 
         if ema is not model:
             ema.update_parameters(model)
         losses.append(loss.item())
+        pace.end()
         if it % 50 == 0:
             bar.set_postfix(loss=f"{losses[-1]:.4g}")
         if state_path is not None and (it + 1) % spec.save_every == 0 and it + 1 < spec.iterations and distributed.is_main():

@@ -177,7 +177,9 @@ def draw_samples(model, meta: dict, cfg, count: int, seed: int, data_fn):
     if meta["net"]["num_classes"]:
         labels = data_fn().labels
         cond = labels[torch.randint(0, len(labels), (count,), generator=g)]
-    torch.set_num_threads(cfg.compute.threads)
+    from .threads import apply_setting
+
+    apply_setting(cfg.compute.threads, probe=False)  # auto: the cores this process may use
     sampler = method_named(meta["method"]).sampler(cfg.method, model, meta["steps"], seed)
     return evaluate.draw(sampler, SimpleNamespace(noise=noise, cond=cond))
 
@@ -228,7 +230,9 @@ def draw_teacher(teacher, meta: dict, cfg, count: int, seed: int, data_fn):
     if meta["net"]["num_classes"]:
         labels = data_fn().labels
         cond = labels[torch.randint(0, len(labels), (count,), generator=g)]
-    torch.set_num_threads(cfg.compute.threads)
+    from .threads import apply_setting
+
+    apply_setting(cfg.compute.threads, probe=False)  # auto: the cores this process may use
     sampler = pipeline.teacher_sampler(teacher.denoiser, int(cfg.teacher.steps), cfg.teacher.sampler)
     return evaluate.draw(sampler, SimpleNamespace(noise=noise, cond=cond))
 

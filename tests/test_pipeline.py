@@ -78,10 +78,13 @@ def test_mlflow_has_parent_and_one_child_per_stage(loose):
     parent = parents[0]
     assert all(c.data.tags["mlflow.parentRunId"] == parent.info.run_id for c in children)
     assert parent.data.params["method.name"] == "progressive" and parent.data.metrics["chosen/steps"] == 1
+    assert parent.data.tags["distillrun.teacher_threads"] == "1"
+    assert parent.data.tags["distillrun.teacher_cache"].startswith("stored ")  # trained here, then cached
     names = sorted(c.info.run_name for c in children)
     assert names[0] == "progressive · stage 1 · 4 steps"
     for c in children:
         assert {"method", "stage", "steps"} <= set(c.data.params)
+        assert c.data.params["threads"] == "1"  # compute.threads=1: the count each stage trained with
         assert {"quality/sw2", "baseline/sw2", "divergence/teacher_rms", "seconds/train"} <= set(c.data.metrics)
         assert len(client.get_metric_history(c.info.run_id, "loss")) == 30  # the whole loss curve
 

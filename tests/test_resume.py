@@ -21,7 +21,8 @@ from distillrun import checkpoint
 
 # 3 progressive stages (8 -> 4 -> 2 -> 1 steps), a resume point every 10 iterations, one torch thread.
 SMALL = ["teacher.iterations=60", "teacher.warmup=10", "teacher.steps=8", "method.iterations=20",
-         "checkpoint_every=10", *TINY, "stop.tolerance=1000"]
+         "checkpoint_every=10", *TINY, "stop.tolerance=1000",
+         "compute.teacher_cache=false"]  # these tests kill the teacher's training: it must not come from the cache
 ENV = {**os.environ, "OMP_NUM_THREADS": "1", "MLFLOW_DISABLE_TELEMETRY": "true", "PYTHONWARNINGS": "ignore"}
 
 
