@@ -164,24 +164,19 @@ def rebuild_student(folder: Path) -> tuple[object, dict]:
 
 # --------------------------------------------------------------------------------------------------- draw
 def draw_samples(model, meta: dict, cfg, count: int, seed: int, data_fn):
-    """The stage's sampler on the noise bank of eval.seed=seed, eval.samples=count (evaluate.make_bench's draw
-    order: noise first, then class labels picked from the data's labels)."""
-    import torch
-
-    from . import evaluate
+    """The stage's sampler on the noise bank of eval.seed=seed, eval.samples=count."""
     from .methods import method_named
 
-    g = torch.Generator().manual_seed(seed)
-    noise = torch.randn((count, *meta["net"]["data_shape"]), generator=g)
-    cond = None
-    if meta["net"]["num_classes"]:
-        labels = data_fn().labels
-        cond = labels[torch.randint(0, len(labels), (count,), generator=g)]
-    from .threads import apply_setting
+    return _draw_on_bank(method_named(meta["method"]).sampler(cfg.method, model, meta["steps"], seed),
+                         meta, cfg, count, seed, data_fn)
 
-    apply_setting(cfg.compute.threads, probe=False)  # auto: the cores this process may use
-    sampler = method_named(meta["method"]).sampler(cfg.method, model, meta["steps"], seed)
-    return evaluate.draw(sampler, SimpleNamespace(noise=noise, cond=cond))
+
+def draw_teacher(teacher, meta: dict, cfg, count: int, seed: int, data_fn):
+    """The teacher at full steps (its own sampler) on the noise bank of eval.seed=seed, eval.samples=count."""
+    from . import pipeline
+
+    return _draw_on_bank(pipeline.teacher_sampler(teacher.denoiser, int(cfg.teacher.steps), cfg.teacher.sampler),
+                         meta, cfg, count, seed, data_fn)
 
 
 def _scored_count(run_dir: Path, cfg) -> int:
@@ -218,11 +213,13 @@ def teacher_model(run_dir: Path, cfg, data_fn):
     return teacher, meta
 
 
-def draw_teacher(teacher, meta: dict, cfg, count: int, seed: int, data_fn):
-    """The teacher at full steps (its own sampler) on the noise bank of eval.seed=seed, eval.samples=count."""
+def _draw_on_bank(sampler, meta: dict, cfg, count: int, seed: int, data_fn):
+    """sampler(noise, cond) on the noise bank of eval.seed=seed, eval.samples=count (evaluate.make_bench's draw
+    order: noise first, then class labels picked from the data's labels)."""
     import torch
 
-    from . import evaluate, pipeline
+    from . import evaluate
+    from .threads import apply_setting
 
     g = torch.Generator().manual_seed(seed)
     noise = torch.randn((count, *meta["net"]["data_shape"]), generator=g)
@@ -230,10 +227,7 @@ def draw_teacher(teacher, meta: dict, cfg, count: int, seed: int, data_fn):
     if meta["net"]["num_classes"]:
         labels = data_fn().labels
         cond = labels[torch.randint(0, len(labels), (count,), generator=g)]
-    from .threads import apply_setting
-
     apply_setting(cfg.compute.threads, probe=False)  # auto: the cores this process may use
-    sampler = pipeline.teacher_sampler(teacher.denoiser, int(cfg.teacher.steps), cfg.teacher.sampler)
     return evaluate.draw(sampler, SimpleNamespace(noise=noise, cond=cond))
 
 
