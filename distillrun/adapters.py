@@ -511,3 +511,82 @@ class Adapter:
 
 def file_size(path) -> int:
     return Path(path).stat().st_size
+
+
+# ------------------------------------------------------------------------------------------ students
+def core_network(student: nn.Module) -> nn.Module:
+    """The teacher-shaped network inside a student (a NetDenoiser's `net`, also when a method wraps the
+    denoiser, as consistency models do): where adapters sit and what their layer names are relative to."""
+    from .denoiser import NetDenoiser
+
+    for m in student.modules():
+        if isinstance(m, NetDenoiser):
+            return m.net
+    raise AdapterError(f"a {type(student).__name__} student holds no NetDenoiser; adapters need one")
+
+
+def spec_from(cfg_adapter) -> AdapterSpec:
+    """AdapterSpec from the run config's `adapter` node."""
+    return AdapterSpec(rank=cfg_adapter.rank, scale=cfg_adapter.scale, layers=list(cfg_adapter.layers),
+                       skip=list(cfg_adapter.skip), train_also=list(cfg_adapter.train_also),
+                       seed=int(cfg_adapter.seed))
+
+
+def adapt_student(student: nn.Module, cfg_adapter, start: "Adapter | None" = None) -> nn.Module:
+    """Give a freshly copied student trainable adapters, in place: a student copied from an adapter student keeps
+    its adapters (stage k starts from stage k - 1's); one copied from the teacher gets new zero-initialised ones,
+    or `start` (an adapter file's contents) when given. Everything else is frozen."""
+    net = core_network(student)
+    spec = spec_from(cfg_adapter)
+    if not adapted(net):
+        if start is not None:
+            start.apply(net, allow_other_base=bool(cfg_adapter.allow_other_base), override_key="adapter.allow_other_base")
+        else:
+            attach(net, spec)
+    student.requires_grad_(False)
+    set_trainable(net, spec.train_also)
+    return student
+
+
+def frozen_teacher(module):
+    """A stage teacher with adapters folded into plain weights (same outputs bit for bit, no per-call cost);
+    anything else unchanged."""
+    if isinstance(module, nn.Module) and any(isinstance(m, LowRankDelta) for m in module.modules()):
+        return merged_copy(module)
+    return module
+
+
+def is_adapter_student(student: nn.Module) -> bool:
+    try:
+        return bool(adapted(core_network(student)))
+    except AdapterError:
+        return False
+
+
+def student_payload(student: nn.Module, train_also: Iterable[str], info: Mapping | None = None):
+    """(tensors, description) a stage saves for an adapter student: the adapter alone."""
+    return Adapter.extract(core_network(student), train_also, info).payload()
+
+
+def load_into_student(student: nn.Module, tensors: Mapping[str, torch.Tensor], desc: Mapping, source: str) -> None:
+    """Put a saved stage adapter into a student built for that stage (whose core network carries adapters of the
+    same layers and ranks, or none). The base teacher must match exactly (it is the run's own teacher)."""
+    ad = Adapter.from_payload(tensors, desc, source)
+    net = core_network(student)
+    if not adapted(net):
+        ad.apply(net, source=source, override_key="adapter.allow_other_base")
+        return
+    ours = adapted(net)
+    if set(ours) != set(ad.layers) or any(ours[n].rank != f.factor_in.shape[0] for n, f in ad.layers.items()):
+        raise AdapterError(f"{source}: its adapted layers or ranks differ from this run's adapter settings")
+    have = base_digest(net, ad.whole)
+    if ad.base_sha256 is not None and have != ad.base_sha256:
+        raise AdapterError(f"{source}: made for the base teacher with weights sha256 {ad.base_sha256[:12]}, "
+                           f"this run's teacher is {have[:12]}")
+    with torch.no_grad():
+        for name, f in ad.layers.items():
+            ours[name].factor_in.copy_(f.factor_in)
+            ours[name].factor_out.copy_(f.factor_out)
+            ours[name].gain = f.gain
+        for name, t in ad.whole.items():
+            _parameter(net, name).copy_(t)
