@@ -135,10 +135,12 @@ def pick_stage(run_dir: Path, summary: dict | None, stage: int | None) -> Path:
     return run_dir / f"stage-{stage:02d}"
 
 
-def rebuild_student(folder: Path, data_fn) -> tuple[object, dict]:
-    """The stage's student as the pipeline sampled it: a NetDenoiser (progressive) or a ConsistencyModel."""
+def rebuild_student(folder: Path) -> tuple[object, dict]:
+    """The saved network of a stage (or of the teacher/ folder) as the pipeline sampled it: a NetDenoiser,
+    wrapped by its method's `rebuild` for a stage."""
     from . import checkpoint, teachers
     from .denoiser import NetDenoiser
+    from .methods import METHODS
     from .schedule import Schedule
 
     state, meta = checkpoint.load_model_files(folder)
@@ -147,16 +149,12 @@ def rebuild_student(folder: Path, data_fn) -> tuple[object, dict]:
     except (ImportError, AttributeError) as e:
         raise InputError(f"{folder / 'model.json'}: cannot rebuild the network ({e}); is the factory's folder "
                          "on PYTHONPATH?") from None
-    c = meta.get("consistency") or {}
-    if meta["method"] == "consistency":  # sigma_data: as saved, else what the pipeline used (the data's std)
-        sigma_data = meta.get("sigma_data") or c.get("sigma_data") or data_fn().sigma_data
     try:
-        sch = meta["schedule"]
-        model = NetDenoiser(net, meta["parameterization"], Schedule(**sch) if isinstance(sch, dict) else Schedule(sch))
-        if meta["method"] == "consistency":
-            from .methods.consistency import ConsistencyModel
-
-            model = ConsistencyModel(model, sigma_data, c["sigma_min"])
+        model = NetDenoiser(net, meta["parameterization"], Schedule(meta["schedule"]))
+        if meta["stage"] > 0:  # a student; stage 0 is the teacher's own network
+            if meta.get("method") not in METHODS:
+                raise ValueError(f"method {meta.get('method')!r} is not one of {', '.join(METHODS)}")
+            model = METHODS[meta["method"]].rebuild(model, meta)
         model.load_state_dict(state)
     except (KeyError, TypeError, ValueError, RuntimeError) as e:
         first = str(e).strip().splitlines()[0] if str(e).strip() else type(e).__name__
@@ -169,9 +167,9 @@ def draw_samples(model, meta: dict, cfg, count: int, seed: int, data_fn):
     """The stage's sampler on the noise bank of eval.seed=seed, eval.samples=count (evaluate.make_bench's draw
     order: noise first, then class labels picked from the data's labels)."""
     import torch
-    from omegaconf import OmegaConf
 
-    from . import evaluate, stages
+    from . import evaluate
+    from .methods import method_named
 
     g = torch.Generator().manual_seed(seed)
     noise = torch.randn((count, *meta["net"]["data_shape"]), generator=g)
@@ -179,11 +177,8 @@ def draw_samples(model, meta: dict, cfg, count: int, seed: int, data_fn):
     if meta["net"]["num_classes"]:
         labels = data_fn().labels
         cond = labels[torch.randint(0, len(labels), (count,), generator=g)]
-    run_cfg = OmegaConf.merge(cfg, {"eval": {"seed": seed}})
-    if meta["method"] == "consistency":
-        run_cfg.method.sigma_data = model.sigma_data  # resolved: the config may say null (= the data's std)
     torch.set_num_threads(cfg.compute.threads)
-    sampler = stages.method_for(meta["method"]).sampler(run_cfg, model, meta["steps"])
+    sampler = method_named(meta["method"]).sampler(cfg.method, model, meta["steps"], seed)
     return evaluate.draw(sampler, SimpleNamespace(noise=noise, cond=cond))
 
 
@@ -211,7 +206,7 @@ def cmd_draw(args) -> int:
         raise InputError(f"--count {count}: must be >= 1")
     data = {}
     data_fn = lambda: data.setdefault("d", pipeline.load_data(cfg))  # noqa: E731  (loaded only when needed)
-    model, meta = rebuild_student(folder, data_fn)
+    model, meta = rebuild_student(folder)
     out = draw_target(args, args.run_dir, meta["stage"], seed, count)
     x = draw_samples(model, meta, cfg, count, seed, data_fn)
     backdrop = torch.empty(0, *x.shape[1:])  # the data behind a 2D scatter, when it can still be loaded
