@@ -260,11 +260,17 @@ def unmerge(net: nn.Module) -> None:
 
 def merged_copy(net: nn.Module) -> nn.Module:
     """A copy of net with every adapter folded into a plain weight and the parametrizations removed: the
-    state dict has the teacher's keys, so it loads wherever the teacher's weights load."""
+    state dict has the teacher's keys, so it loads wherever the teacher's weights load. The original is untouched.
+    (Not parametrize.remove_parametrizations on a deep copy: the copy shares its generated module class with the
+    original, and removing the parametrization deletes the class's `weight` property, which breaks the original.)"""
     out = copy.deepcopy(net)
     for layer in adapted(out):
         module = out.get_submodule(layer)
-        parametrize.remove_parametrizations(module, "weight", leave_parametrized=True)
+        with torch.no_grad():
+            weight = module.weight.detach().clone()  # the parametrized value: teacher + change, strides kept
+        del module._modules["parametrizations"]
+        module.__class__ = module.__class__.__bases__[0]  # the layer's own class (Linear, Conv2d, a subclass)
+        module.weight = nn.Parameter(weight)
     out.requires_grad_(False)
     return out
 

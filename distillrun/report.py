@@ -91,22 +91,41 @@ def stage_table(summary: dict) -> str:
     metric = summary["stop_metric"]
     ref = summary["reference"]
     head = f"{'stage':>5} {'steps':>5}  {metric + ' ± se':>18}  {'DDIM baseline':>13}  {'diverg. rms':>11}  " \
-           f"{'verdict':>7}  {'seconds':>7}"
+           f"{'verdict':>7}  {'seconds':>7}  {'trained':>8}  {'saved':>8}"
     lines = [head, "-" * len(head),
              f"{'teach':>5} {ref.get('steps', 0):>5}  {_pm(ref['teacher'], metric):>18}  {'':>13}  {'':>11}  "
-             f"{'':>7}  {'':>7}"]
+             f"{'':>7}  {'':>7}  {'':>8}  {'':>8}"]
     for r in summary["stages"]:
         m = r["metrics"]
         secs = r["seconds"]["train"] + r["seconds"]["eval"]
         lines.append(f"{r['index']:>5} {r['steps']:>5}  {_pm(m, metric, 'quality/'):>18}  "
                      f"{m.get(f'baseline/{metric}', math.nan):>13.4g}  {m.get('divergence/teacher_rms', math.nan):>11.4g}  "
-                     f"{r['verdict']:>7}  {secs:>7.1f}")
+                     f"{r['verdict']:>7}  {secs:>7.1f}  {count_text(m.get('size/trainable_params')):>8}  "
+                     f"{bytes_text(m.get('size/saved_bytes')):>8}")
     chosen = summary["chosen"]
+    lines.append(f"students: {summary.get('students', 'full')} (trained: parameters that train; saved: bytes a stage "
+                 "writes for its student)")
     lines.append(f"floor ({metric}, data vs data): {ref['floor'][metric]:.4g}")
     lines.append(f"stopped: {summary['stopped_because']}")
     lines.append("chosen student: " + (f"stage {chosen['index']} at {n_steps(chosen['steps'])} ({chosen['folder']})"
                                        if chosen else "none within tolerance"))
     return "\n".join(lines)
+
+
+def count_text(n) -> str:
+    """931k, 58.9k, 512; empty when not measured."""
+    if n is None or (isinstance(n, float) and math.isnan(n)):
+        return ""
+    n = int(n)
+    return f"{n / 1e6:.3g}M" if n >= 10 ** 6 else f"{n / 1e3:.3g}k" if n >= 10 ** 4 else str(n)
+
+
+def bytes_text(n) -> str:
+    """3.73 MB, 237 kB, 900 B (decimal units); empty when not measured."""
+    if n is None or (isinstance(n, float) and math.isnan(n)):
+        return ""
+    n = int(n)
+    return f"{n / 1e6:.3g} MB" if n >= 10 ** 6 else f"{n / 1e3:.3g} kB" if n >= 10 ** 3 else f"{n} B"
 
 
 def n_steps(n: int) -> str:
@@ -178,13 +197,16 @@ def _num(v, fmt=".4g") -> str:
 def compare_rows(label: str, s: dict, metric: str) -> list[list[str]]:
     ref = s["reference"]
     pm = lambda m, p: f"{_num(m.get(p + metric))} ± {_num(m.get(p + metric + '_se'), '.2g')}"  # noqa: E731
-    rows = [[label, s["method"], "teacher", str(ref.get("steps", "")), pm(ref["teacher"], ""), "", "", "", "", ""]]
+    students = s.get("students", "full")
+    method = s["method"] if students == "full" else f"{s['method']} · {students}"
+    rows = [[label, method, "teacher", str(ref.get("steps", "")), pm(ref["teacher"], ""), "", "", "", "", "", "", ""]]
     for r in s["stages"]:
         m = r["metrics"]
-        rows.append([label, r["method"], str(r["index"]), str(r["steps"]), pm(m, "quality/") if m else "",
+        rows.append([label, method, str(r["index"]), str(r["steps"]), pm(m, "quality/") if m else "",
                      _num(m.get(f"baseline/{metric}")), _num(m.get("divergence/teacher_rms")),
                      _num(m.get("divergence/teacher_median")), r["verdict"],
-                     f"{r['seconds']['train'] + r['seconds']['eval']:.1f}"])
+                     f"{r['seconds']['train'] + r['seconds']['eval']:.1f}", count_text(m.get("size/trainable_params")),
+                     bytes_text(m.get("size/saved_bytes"))])
     return rows
 
 
@@ -199,7 +221,7 @@ def comparison_table(runs: list[tuple[str, dict]], metric: str) -> str:
     """`distillrun compare`'s table: per run a teacher row and one row per stage, then a note with the floor,
     the chosen student and why the run stopped. Empty cells: not measured (a failed stage, no baseline)."""
     head = ["run", "method", "stage", "steps", f"{metric} ± se", "DDIM baseline", "diverg. rms", "diverg. median",
-            "verdict", "seconds"]
+            "verdict", "seconds", "trained", "saved"]
     table = format_table(head, [row for label, s in runs for row in compare_rows(label, s, metric)])
     notes = []
     for label, s in runs:

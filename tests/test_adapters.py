@@ -122,6 +122,8 @@ def test_merge_then_unmerge_restores_teacher_weights_exactly(make):
     fresh.load_state_dict(plain.state_dict())
     with torch.no_grad():
         assert torch.equal(fresh(x, t), live)
+        assert torch.equal(student(x, t), live)  # the original still works after the copy was made
+    assert type(student.get_submodule(next(iter(A.adapted(student))))) is not type(plain.get_submodule(next(iter(A.adapted(student)))))
 
 
 def test_base_digest_names_the_teacher_through_adapters_and_merging():
