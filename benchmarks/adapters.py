@@ -54,12 +54,13 @@ def main() -> None:
     ap.add_argument("--out", type=Path, default=Path("/tmp/distillrun-adapters"))
     ap.add_argument("--set", nargs="*", default=[], metavar="KEY=VALUE", help="overrides for both runs")
     ap.add_argument("--adapter-set", nargs="*", default=[], metavar="KEY=VALUE", help="overrides for the adapter run")
+    ap.add_argument("--tag", default="", help="suffix of the adapter run's folder (several adapter settings, one full run)")
     args = ap.parse_args()
     out = args.out / args.recipe
-    full_dir, ad_dir = out / "full", out / f"adapter-r{args.rank}"
+    full_dir, ad_dir = out / "full", out / f"adapter-r{args.rank}{args.tag}"
     load0 = os.getloadavg()
     t0 = time.perf_counter()
-    full = run(args.recipe, full_dir, ["stop.tolerance=1000", *args.set])
+    full = run(args.recipe, full_dir, ["stop.tolerance=1000", *args.set])  # resumed (stages reloaded) if it exists
     t_full = time.perf_counter() - t0
     if (full_dir / "teacher").exists() and not (ad_dir / "teacher").exists():
         ad_dir.mkdir(parents=True, exist_ok=True)
@@ -96,7 +97,7 @@ def main() -> None:
               f"{as_['trainable_params'] / fs['trainable_params']:.1%} | {as_['saved_bytes']}/{fs['saved_bytes']} = "
               f"{as_['saved_bytes'] / fs['saved_bytes']:.1%} | {row['train_s'][0]:.1f} | {row['train_s'][1]:.1f} | "
               f"{row['train_s'][1] / row['train_s'][0]:.2f} |")
-    (out / "result.json").write_text(json.dumps({"recipe": args.recipe, "rank": args.rank, "metric": metric,
+    (out / f"result-r{args.rank}{args.tag}.json").write_text(json.dumps({"recipe": args.recipe, "rank": args.rank, "metric": metric,
                                                  "load": [load0[0], load1[0]], "rows": table}, indent=2))
 
 
