@@ -6,10 +6,11 @@ teacher on a shifted variant of the data; put the original speed adapter on the 
 
 Steps (all through the package, each run folder kept under --out):
   1. original/   distillrun with adapter students on the six-island mixture (the default job, adapter=lowrank)
-  2. moved.npy   the same mixture with two islands moved (a data shift a user's fine-tuning might make)
-  3. finetuned/  the original teacher trained further on moved.npy (same loss and schedule; lower LR);
+  2. data.name=archipelago_moved: the same mixture with two islands moved (a data shift a user's fine-tuning
+                 might make; its density is known too)
+  3. finetuned/  the original teacher trained further on the moved data (same loss and schedule; lower LR);
                  saved as a user teacher (weights + factory distillrun.nets:build_net)
-  4. direct/     distillrun on moved.npy with the fine-tuned teacher imported and adapter students distilled
+  4. direct/     distillrun on the moved data with the fine-tuned teacher imported and adapter students distilled
                  from it directly: its reference gives (a) the fine-tuned teacher at full steps, its baselines
                  (b) the fine-tuned teacher's own DDIM at each student's steps, its students (c)
   5. transfer    each stage adapter of original/ applied to the fine-tuned teacher (allow_other_base, scale 1;
@@ -36,10 +37,6 @@ from pathlib import Path
 
 os.environ.setdefault("MLFLOW_DISABLE_TELEMETRY", "true")
 
-# Islands 0 and 3 of the archipelago (the largest and a mid-sized one) move by these offsets.
-MOVES = {0: (0.45, -0.55), 3: (-0.35, 0.60)}
-
-
 def compose_cfg(overrides: list[str]):
     from hydra import compose, initialize_config_module
 
@@ -59,18 +56,6 @@ def run(overrides: list[str]) -> tuple[object, dict]:
     cfg = compose_cfg(overrides)
     with recorder_for(cfg) as rec:
         return cfg, pipeline.run(cfg, rec, "adapter_transfer")
-
-
-def moved_mixture():
-    import torch
-
-    from distillrun.data.mixture import GaussianMixture, archipelago
-
-    mix = archipelago()
-    means = mix.means.clone()
-    for i, (dx, dy) in MOVES.items():
-        means[i] += torch.tensor([dx, dy])
-    return GaussianMixture(mix.weights, means, mix.covs)
 
 
 def finetune(teacher_dir: Path, data_x, iterations: int, lr: float, seed: int, out: Path):
@@ -105,8 +90,7 @@ def finetune(teacher_dir: Path, data_x, iterations: int, lr: float, seed: int, o
 
 
 def main() -> None:
-    import numpy as np
-    import torch
+    from omegaconf import OmegaConf
 
     from distillrun import adapters, checkpoint, evaluate, pipeline
     from distillrun.denoiser import NetDenoiser
@@ -128,11 +112,8 @@ def main() -> None:
 
     # 1. adapter students on the original teacher
     cfg_o, sum_o = run([f"run_dir={out / 'original'}", *common])
-    # 2. the shifted data
-    mix = moved_mixture()
-    g = torch.Generator().manual_seed(7)
-    moved = mix.sample(cfg_o.data.n_train, g)[0]
-    np.save(out / "moved.npy", moved.numpy())
+    # 2. the shifted data (same size and seed as the original's)
+    moved = pipeline.load_data(OmegaConf.merge(cfg_o, {"data": {"name": "archipelago_moved"}})).x
     # 3. fine-tuned teacher
     ft = out / "finetuned"
     if not (ft / "weights.safetensors").exists():
@@ -141,12 +122,13 @@ def main() -> None:
     kwargs = json.loads((ft / "factory.json").read_text())
     # 4. adapter students distilled directly from the fine-tuned teacher, on the moved data
     imported = ["teacher=import", "teacher.factory=distillrun.nets:build_net", f"teacher.weights={ft / 'weights.safetensors'}",
-                f"+teacher.factory_kwargs={json.dumps(kwargs).replace(' ', '')}", "data=array",
-                f"data.path={out / 'moved.npy'}", f"teacher.steps={cfg_o.teacher.steps}"]
+                *[f"+teacher.factory_kwargs.{k}={json.dumps(v).replace(' ', '')}" for k, v in kwargs.items()],
+                "data=archipelago_moved", f"teacher.steps={cfg_o.teacher.steps}"]
     cfg_d, sum_d = run([f"run_dir={out / 'direct'}", *common, *imported])
     # 5. transfer: the original's stage adapters on the fine-tuned teacher, on direct/'s bench
     data = pipeline.load_data(cfg_d)
-    bench = evaluate.make_bench(data, cfg_d.eval.samples, cfg_d.eval.projections, cfg_d.eval.bootstrap, cfg_d.eval.seed)
+    bench = evaluate.make_bench(data, cfg_d.eval.samples, cfg_d.eval.projections, cfg_d.eval.bootstrap, cfg_d.eval.seed,
+                               cond_needed=False)
     metric = sum_d["stop_metric"]
 
     def build(weights_state):
