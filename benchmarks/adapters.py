@@ -27,8 +27,11 @@ from pathlib import Path
 os.environ.setdefault("MLFLOW_DISABLE_TELEMETRY", "true")
 
 
-def run(recipe: str, run_dir: Path, overrides: list[str]) -> dict:
+def run(recipe: str, run_dir: Path, overrides: list[str], teacher_from: Path | None = None) -> dict:
+    """One pipeline run; with teacher_from, a new run folder starts with that run's trained teacher (its
+    config.yaml written first, as the run itself would write it, so the folder is taken as this run's)."""
     from hydra import compose, initialize_config_module
+    from omegaconf import OmegaConf
 
     from distillrun import pipeline
     from distillrun.config import register_configs, validate
@@ -39,6 +42,10 @@ def run(recipe: str, run_dir: Path, overrides: list[str]) -> dict:
         cfg = compose("run", overrides=[f"recipe={recipe}", f"run_dir={run_dir}", "tracking=off", "quiet=true",
                                         *overrides])
     validate(cfg)
+    if teacher_from is not None and not (run_dir / "teacher").exists():
+        run_dir.mkdir(parents=True, exist_ok=True)
+        shutil.copytree(teacher_from / "teacher", run_dir / "teacher")
+        (run_dir / "config.yaml").write_text(OmegaConf.to_yaml(cfg, resolve=True))
     with recorder_for(cfg) as rec:
         return pipeline.run(cfg, rec, recipe)
 
@@ -62,12 +69,9 @@ def main() -> None:
     t0 = time.perf_counter()
     full = run(args.recipe, full_dir, ["stop.tolerance=1000", *args.set])  # resumed (stages reloaded) if it exists
     t_full = time.perf_counter() - t0
-    if (full_dir / "teacher").exists() and not (ad_dir / "teacher").exists():
-        ad_dir.mkdir(parents=True, exist_ok=True)
-        shutil.copytree(full_dir / "teacher", ad_dir / "teacher")
     t0 = time.perf_counter()
     ad = run(args.recipe, ad_dir, ["stop.tolerance=1000", "adapter=lowrank", f"adapter.rank={args.rank}",
-                                   *args.set, *args.adapter_set])
+                                   *args.set, *args.adapter_set], teacher_from=full_dir)
     t_ad = time.perf_counter() - t0
     load1 = os.getloadavg()
     metric = full["stop_metric"]
