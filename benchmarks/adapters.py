@@ -80,9 +80,10 @@ def main() -> None:
     print(f"load average before {load0[0]:.1f}, after {load1[0]:.1f}; wall full {t_full:.0f} s, adapter {t_ad:.0f} s")
     ref = full["reference"]["teacher"]
     print(f"teacher at full steps: {metric} {ref[metric]:.4g} ± {ref.get(metric + '_se', float('nan')):.2g}")
-    print(f"| steps | full {metric} | adapter {metric} | teacher DDIM | trainable adapter/full | saved bytes adapter/full "
-          f"| train s full | train s adapter | time ratio |")
-    print("|---|---|---|---|---|---|---|---|---|")
+    extra = "nll_gap" if "quality/nll_gap" in next(iter(f_rows.values()))["metrics"] else None
+    print(f"| steps | full {metric} | adapter {metric} | teacher DDIM |" + (f" full {extra} | adapter {extra} |" if extra else "")
+          + " trainable adapter/full | saved bytes adapter/full | train s full | train s adapter | time ratio |")
+    print("|---" * (9 + 2 * bool(extra)) + "|")
     table = []
     for steps in sorted(f_rows, reverse=True):
         f, a = f_rows[steps], a_rows.get(steps)
@@ -96,8 +97,12 @@ def main() -> None:
                "bytes": (as_["saved_bytes"], fs["saved_bytes"]),
                "train_s": (f["seconds"]["train"], a["seconds"]["train"])}
         table.append(row)
+        ex = ""
+        if extra:
+            row["extra"] = (fm[f"quality/{extra}"], fm[f"quality/{extra}_se"], am[f"quality/{extra}"], am[f"quality/{extra}_se"])
+            ex = " {:.4g} ± {:.2g} | {:.4g} ± {:.2g} |".format(*row["extra"])
         print(f"| {steps} | {row['full']:.4g} ± {row['full_se']:.2g} | {row['adapter']:.4g} ± {row['adapter_se']:.2g} | "
-              f"{row['ddim']:.4g} | {as_['trainable_params']}/{fs['trainable_params']} = "
+              f"{row['ddim']:.4g} |{ex} {as_['trainable_params']}/{fs['trainable_params']} = "
               f"{as_['trainable_params'] / fs['trainable_params']:.1%} | {as_['saved_bytes']}/{fs['saved_bytes']} = "
               f"{as_['saved_bytes'] / fs['saved_bytes']:.1%} | {row['train_s'][0]:.1f} | {row['train_s'][1]:.1f} | "
               f"{row['train_s'][1] / row['train_s'][0]:.2f} |")
