@@ -90,7 +90,8 @@ def main() -> None:
         if a is None:
             continue
         fm, am = f["metrics"], a["metrics"]
-        fs, as_ = f["size"], a["size"]
+        fs = {k: fm[f"size/{k}"] for k in ("trainable_params", "saved_bytes")}
+        as_ = {k: am[f"size/{k}"] for k in ("trainable_params", "saved_bytes")}
         row = {"steps": steps, "full": fm[f"quality/{metric}"], "full_se": fm.get(f"quality/{metric}_se"),
                "adapter": am[f"quality/{metric}"], "adapter_se": am.get(f"quality/{metric}_se"),
                "ddim": fm.get(f"baseline/{metric}"), "params": (as_["trainable_params"], fs["trainable_params"]),
