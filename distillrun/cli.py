@@ -4,6 +4,7 @@
   distillrun recipes                 list recipes with purpose and expected CPU time
   distillrun draw RUN_DIR ...        sample from a finished run's chosen student (or any stage)
   distillrun compare RUN_DIR ...     stage table and plots for one run or several
+  distillrun merge RUN_DIR ...       an adapter student written as one full network (teacher + adapter folded in)
 Exit codes: 0 done, 2 bad config or input (one line, nothing written), 3 a stage or the teacher's training
 failed (one line saying what to change; earlier stages stay in the run folder).
 """
@@ -13,7 +14,7 @@ import sys
 
 from .config import ConfigError, register_configs, validate
 
-VERBS = ("recipes", "draw", "compare")
+VERBS = ("recipes", "draw", "compare", "merge")
 EXIT_BAD_INPUT, EXIT_STAGE_FAILED = 2, 3
 
 
@@ -24,12 +25,13 @@ def fail(message: str, code: int = EXIT_BAD_INPUT):
 
 def user_errors() -> tuple[type[Exception], ...]:
     """Exceptions that describe a problem with the user's config, files or services (one line, exit 2)."""
+    from .adapters import AdapterError
     from .checkpoint import CheckpointError
     from .teachers import TeacherError
     from .pipeline import DataError, RunFolderError
     from .tracking import TrackingError
 
-    return ConfigError, CheckpointError, TeacherError, DataError, RunFolderError, TrackingError
+    return ConfigError, CheckpointError, TeacherError, DataError, RunFolderError, TrackingError, AdapterError
 
 
 def compose_error_line(e: Exception) -> str:

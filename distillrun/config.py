@@ -109,6 +109,22 @@ class ComputeConfig:
 
 
 @dataclass
+class AdapterConfig:
+    """Adapter students (low-rank adaptation, Hu et al. 2021): each student is the frozen teacher plus trainable
+    low-rank changes of chosen Linear/Conv2d weights; a stage saves only those (see distillrun.adapters)."""
+    enabled: bool = False  # adapter=lowrank turns it on; false: full students (every weight trains and is saved)
+    rank: int = 8  # rank of every weight change
+    scale: Optional[float] = None  # alpha of Hu et al.: the change is (scale / rank) B A; null: scale = rank
+    layers: list[str] = field(default_factory=lambda: ["*"])  # glob patterns over the network's layer names
+    skip: list[str] = field(default_factory=list)  # glob patterns of layers left without adapters
+    train_also: list[str] = field(default_factory=list)  # glob patterns of parameters trained and saved whole
+    lr: Optional[float] = None  # the students' learning rate; null: method.lr
+    seed: int = 0  # the first factor's random start
+    start_from: Optional[str] = None  # an adapter file (.safetensors) the first stage starts from
+    allow_other_base: bool = False  # apply start_from even when it names another base teacher
+
+
+@dataclass
 class RunConfig:
     data: DataConfig = MISSING
     net: NetConfig = MISSING
@@ -118,6 +134,7 @@ class RunConfig:
     stop: StopConfig = MISSING
     tracking: TrackingConfig = MISSING
     compute: ComputeConfig = MISSING
+    adapter: AdapterConfig = MISSING
     seed: int = 0
     run_dir: Optional[str] = None  # None: a new folder under runs/; an existing one is resumed
     dry_run: bool = False  # print the plan and exit
@@ -136,7 +153,8 @@ def register_configs() -> None:
     cs = ConfigStore.instance()
     cs.store(name="run_schema", node=RunConfig)
     for group, node in [("data", DataConfig), ("net", NetConfig), ("teacher", TeacherConfig), ("eval", EvalConfig),
-                        ("stop", StopConfig), ("tracking", TrackingConfig), ("compute", ComputeConfig)]:
+                        ("stop", StopConfig), ("tracking", TrackingConfig), ("compute", ComputeConfig),
+                        ("adapter", AdapterConfig)]:
         cs.store(group=group, name=f"{node.__name__.removesuffix('Config').lower()}_schema", node=node)
     for path in recipe_files():  # top-level recipes/ (installed as distillrun.recipes) is the `recipe` group
         cs.store(group="recipe", name=path.stem, node=OmegaConf.load(path), package="_global_")
@@ -221,6 +239,7 @@ def validate(cfg: DictConfig) -> None:
         raise ConfigError("stop.z", cfg.stop.z, "must be a finite number >= 0")
     if cfg.eval.detect is not None and not (math.isfinite(cfg.eval.detect) and cfg.eval.detect > 0):
         raise ConfigError("eval.detect", cfg.eval.detect, "must be a finite number > 0 or null")
+    _validate_adapter(cfg.adapter)
     one_of("compute.device", cfg.compute.device, ("cpu", "cuda", "auto"))
     one_of("compute.precision", cfg.compute.precision, ("fp32", "bf16"))
     _threads(cfg.compute.threads)
@@ -256,4 +275,23 @@ def _validate_stop(cfg: DictConfig, images: bool, known_density: bool) -> None:
                           "negative; use stop=absolute (stop.mode=absolute)")
     if cfg.stop.mode == "absolute" and cfg.stop.tolerance is None:
         raise ConfigError("stop.tolerance", None, f"stop.mode=absolute needs a tolerance in units of {cfg.stop.metric}")
+
+def _validate_adapter(a: DictConfig) -> None:
+    """The adapter keys that need no network (layer patterns are checked against it in pipeline.preflight)."""
+    if not a.enabled:
+        return
+    if isinstance(a.rank, bool) or a.rank < 1:
+        raise ConfigError("adapter.rank", a.rank, "must be a whole number >= 1")
+    for key in ("scale", "lr"):
+        if a[key] is not None and not (math.isfinite(a[key]) and a[key] > 0):
+            raise ConfigError(f"adapter.{key}", a[key], "must be a finite number > 0, or null")
+    if not a.layers:
+        raise ConfigError("adapter.layers", list(a.layers), "must name at least one layer pattern, e.g. ['*'] for "
+                          "every Linear and Conv2d layer")
+    for key in ("layers", "skip", "train_also"):
+        if any(not p for p in a[key]):
+            raise ConfigError(f"adapter.{key}", list(a[key]), "must be a list of non-empty glob patterns")
+    if a.start_from is not None and not os.path.isfile(a.start_from):
+        raise ConfigError("adapter.start_from", a.start_from, "no such file (an adapter .safetensors a run saved)")
+
 

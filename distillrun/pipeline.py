@@ -14,6 +14,7 @@ Run folder (resumable; every file written atomically, a stage counts as done onc
 """
 from __future__ import annotations
 
+import copy
 import math
 import shutil
 import time
@@ -24,7 +25,7 @@ from typing import Callable
 import torch
 from omegaconf import DictConfig
 
-from . import checkpoint, distributed, evaluate, report, runfolder, stopping, threads
+from . import adapters, checkpoint, distributed, evaluate, report, runfolder, stopping, threads
 from .data import DATASETS, load_dataset
 from .methods import Method, StageJob, StageSpec, method_named
 from .nets import NETS, fast_layout, kind_for
@@ -71,10 +72,12 @@ def preflight(cfg: DictConfig):
         raise DataError(f"net.class_cond=true but data.name={cfg.data.name} has no labels")
     with torch.random.fork_rng(devices=[]):  # user code and network init must not shift the run's seed
         if cfg.teacher.source == "import":
-            import_teacher(cfg.teacher.factory, cfg.teacher.factory_kwargs, cfg.teacher.weights, data.shape,
-                           data.num_classes if cfg.net.class_cond else 0)
+            net = import_teacher(cfg.teacher.factory, cfg.teacher.factory_kwargs, cfg.teacher.weights, data.shape,
+                                 data.num_classes if cfg.net.class_cond else 0)
         else:
-            _try_network(cfg, data)
+            net = _try_network(cfg, data)
+        if cfg.adapter.enabled:
+            _check_adapter(cfg, net)
     runfolder.check(cfg)
     if cfg.tracking.enabled:
         from .tracking import check_reachable
@@ -90,8 +93,22 @@ def _check_spread(cfg, data) -> None:
                         "same point; valid: at least 2 samples, none repeated in more than half of them")
 
 
-def _try_network(cfg, data) -> None:
-    """Build the configured network and run it on two data points: a size it cannot take fails here."""
+def _check_adapter(cfg, net) -> None:
+    """Adapter settings against the (untrained or imported) teacher network: every layer pattern matches a layer;
+    an adapter.start_from file fits its layers, and names this teacher unless allow_other_base (checked here for
+    imported teachers, whose weights are known; a trained teacher's are checked when stage 1 starts)."""
+    adapters.attach(copy.deepcopy(net), adapters.spec_from(cfg.adapter))
+    if cfg.adapter.start_from:
+        start = adapters.Adapter.read(cfg.adapter.start_from)
+        probe = copy.deepcopy(net)
+        start.check_fits(probe)
+        if cfg.teacher.source == "import":
+            start.apply(probe, allow_other_base=cfg.adapter.allow_other_base, override_key="adapter.allow_other_base")
+
+
+def _try_network(cfg, data):
+    """Build the configured network and run it on two data points: a size it cannot take fails here.
+    Returns the network."""
     from .methods.teacher import network_for
 
     try:
@@ -107,6 +124,7 @@ def _try_network(cfg, data) -> None:
         shown = ", ".join(f"net.{k}={list(cfg.net[k]) if k == 'mults' else cfg.net[k]}" for k in sizes)
         raise DataError(f"net={cfg.net.kind} ({shown}) cannot take data of shape {data.shape} ({first}); "
                         f"change those sizes or the data") from None
+    return net
 
 
 def plan_stages(cfg: DictConfig) -> list[StageSpec]:
@@ -225,6 +243,8 @@ class RunParts:
     run_dir: Path
     is_main: bool
     bench: evaluate.Bench | None = None
+    adapter_start: adapters.Adapter | None = None  # adapter.start_from's contents: where stage 1's adapter starts
+    train_cfg: DictConfig | None = None  # cfg as the stages train with it (adapter.lr in place of method.lr)
 
 
 def run(cfg: DictConfig, recorder, recipe: str | None = None, data=None) -> dict | None:
@@ -257,6 +277,14 @@ def _run(cfg: DictConfig, recorder, recipe, data, stages: list[StageSpec], run_d
         recorder.start(run_dir, recipe)
     teacher = prepare_teacher(cfg, data, run_dir)
     run = RunParts(cfg, method_named(cfg.method.name), data, teacher, run_dir, is_main)
+    run.train_cfg = cfg
+    if cfg.adapter.enabled:
+        if cfg.adapter.start_from:
+            run.adapter_start = adapters.Adapter.read(cfg.adapter.start_from)
+        if cfg.adapter.lr is not None:
+            from omegaconf import OmegaConf
+
+            run.train_cfg = OmegaConf.merge(cfg, {"method": {"lr": cfg.adapter.lr}})
     previous_samples = reference = None
     if is_main:
         recorder.teacher(teacher)
@@ -306,18 +334,56 @@ def stage_seed(cfg, spec: StageSpec) -> int:
     return cfg.seed * 1000 + spec.index
 
 
+def make_student(run: RunParts, previous):
+    """The method's student for the next stage; with adapter students, the frozen teacher plus adapters
+    (carried over from the previous stage's student, or new ones, or adapter.start_from's at stage 1)."""
+    student = run.method.make_student(run.cfg, previous, run.data)
+    if run.cfg.adapter.enabled:
+        adapters.adapt_student(student, run.cfg.adapter, run.adapter_start)
+    return student
+
+
+def load_student(student, stage_dir: Path) -> None:
+    """A finished stage's weights into the student built for it: the whole network, or (adapter students)
+    the saved adapter onto the run's teacher."""
+    if not adapters.is_adapter_student(student):
+        runfolder.load_model_into(student, stage_dir)
+        return
+    state, meta = checkpoint.load_model_files(stage_dir, f"delete {stage_dir} to recompute it")
+    if "adapter" not in meta:
+        raise checkpoint.CheckpointError(f"{stage_dir / checkpoint.MODEL_FILE}: holds a full student, but this run "
+                                         f"makes adapter students (adapter.enabled=true); delete {stage_dir} to "
+                                         "recompute it")
+    adapters.load_into_student(student, state, meta["adapter"], str(stage_dir / checkpoint.WEIGHTS_FILE))
+
+
+def save_student(run: RunParts, spec: StageSpec, student, stage_dir: Path) -> None:
+    """weights.safetensors + model.json of a stage: the whole network, or (adapter students) the adapter alone
+    with its base teacher's content hash and where `draw` finds that teacher."""
+    meta = run.teacher.student_meta(run.method, run.cfg.method, student, spec)
+    if not adapters.is_adapter_student(student):
+        checkpoint.save_model(stage_dir, student.state_dict(), meta)
+        return
+    info = {"method": run.cfg.method.name, "stage": spec.index, "steps": spec.steps}
+    tensors, desc = adapters.student_payload(student, run.cfg.adapter.train_also, info)
+    base = {"folder": "teacher"} if run.cfg.teacher.source != "import" else \
+        {"weights": str(Path(run.cfg.teacher.weights).resolve())}
+    checkpoint.save_model(stage_dir, tensors, {**meta, "adapter": desc, "base": base})
+
+
 def run_stage(run: RunParts, spec: StageSpec, stage_teacher, previous, previous_samples):
     """Train (or load, if already done) one stage and, on rank 0, evaluate and save it; returns (record,
     student, samples), record and samples None on other ranks. A kill at any point leaves either a finished
     stage (metrics.json written last) or one that trains again from its last mid-run state."""
     cfg, method = run.cfg, run.method
     stage_dir = run.run_dir / f"stage-{spec.index:02d}"
-    student = method.make_student(cfg, previous, run.data)
+    student = make_student(run, previous)
+    trainable = adapters.trainable_count(student)
     done = stage_dir / "metrics.json"
     if done.exists():
         record = finished_record(done, spec)
         if record["failed"] is None:
-            runfolder.load_model_into(student, stage_dir)
+            load_student(student, stage_dir)
             student.requires_grad_(False)
             if not run.is_main:
                 return None, student, None
@@ -327,9 +393,11 @@ def run_stage(run: RunParts, spec: StageSpec, stage_teacher, previous, previous_
             shutil.rmtree(stage_dir)  # a failed stage is tried again from its start
     if run.is_main:
         stage_dir.mkdir(parents=True, exist_ok=True)
-    job = StageJob(spec, stage_teacher, student, run.data, torch.Generator().manual_seed(stage_seed(cfg, spec)),
-                   stage_dir / "partial.safetensors", run.teacher.device, cfg.quiet)
-    result = method.train(cfg, job)
+    # a stage teacher with adapters runs with them folded into its weights (same outputs, cheaper calls)
+    job = StageJob(spec, adapters.frozen_teacher(stage_teacher), student, run.data,
+                   torch.Generator().manual_seed(stage_seed(cfg, spec)), stage_dir / "partial.safetensors",
+                   run.teacher.device, cfg.quiet)
+    result = method.train(run.train_cfg or cfg, job)
     student = result.model
     student.requires_grad_(False)
     if not run.is_main:
@@ -341,7 +409,10 @@ def run_stage(run: RunParts, spec: StageSpec, stage_teacher, previous, previous_
     checkpoint.kill_point(f"{stage_dir.name}:evaluate")
     metrics, x, eval_seconds = evaluate_stage(run, spec, student, previous_samples)
     record = stage_record(cfg, spec, metrics, result, eval_seconds)
-    checkpoint.save_model(stage_dir, student.state_dict(), run.teacher.student_meta(method, cfg.method, student, spec))
+    save_student(run, spec, student, stage_dir)
+    # what the student costs to train and to ship, next to its quality (tables, MLflow, compare)
+    record["metrics"].update({"size/trainable_params": trainable,
+                              "size/saved_bytes": (stage_dir / checkpoint.WEIGHTS_FILE).stat().st_size})
     checkpoint.kill_point(f"{stage_dir.name}:weights")
     checkpoint.atomic_write_json(stage_dir / "loss.json", {"loss": result.losses})
     report.sample_picture(x, run.bench, stage_dir / "samples.png",
@@ -360,8 +431,9 @@ def summarize(cfg, stages, records, reference, run_dir: Path) -> dict:
         why = f"stage {last['index']} ({report.n_steps(last['steps'])}) left the tolerance: {last['rule']}"
     else:
         why = f"reached the target of {report.n_steps(stages[-1].steps)}" if stages else "nothing to do"
+    students = f"adapter rank {cfg.adapter.rank}" if cfg.adapter.enabled else "full"
     judged = [r for r in records if r.get("decided_by")]
-    summary = {"method": cfg.method.name, "stop_rule": cfg.stop.metric,
+    summary = {"method": cfg.method.name, "students": students, "stop_rule": cfg.stop.metric,
                # the metric that decided the last judged stage (tables and plots show it); the rule's own, if one
                "stop_metric": judged[-1]["decided_by"] if judged else stopping.rule_metrics(cfg.stop)[0],
                "panel": list(cfg.stop.panel) if cfg.stop.metric == stopping.PANEL else None,

@@ -128,10 +128,10 @@ def stage_table(summary: dict) -> str:
     cols = [f"{m} ± se" for m in judged]
     widths = [max(16, len(c)) for c in cols]
     head = f"{'stage':>5} {'steps':>5}  " + "  ".join(f"{c:>{w}}" for c, w in zip(cols, widths)) + \
-        f"  {'decided by':>10}  {'seen':>6}  {'DDIM baseline':>13}  {'diverg. rms':>11}  {'verdict':>7}  {'seconds':>7}"
+        f"  {'decided by':>10}  {'seen':>6}  {'DDIM baseline':>13}  {'diverg. rms':>11}  {'verdict':>7}  {'seconds':>7}  {'trained':>8}  {'saved':>8}"
     teach = "  ".join(f"{_pm(ref['teacher'], m):>{w}}" for m, w in zip(judged, widths))
     lines = [head, "-" * len(head),
-             f"{'teach':>5} {ref.get('steps', 0):>5}  {teach}  {'':>10}  {'':>6}  {'':>13}  {'':>11}  {'':>7}  {'':>7}"]
+             f"{'teach':>5} {ref.get('steps', 0):>5}  {teach}  {'':>10}  {'':>6}  {'':>13}  {'':>11}  {'':>7}  {'':>7}  {'':>8}  {'':>8}"]
     for r in summary["stages"]:
         m = r["metrics"]
         secs = r["seconds"]["train"] + r["seconds"]["eval"]
@@ -141,9 +141,12 @@ def stage_table(summary: dict) -> str:
         seen = math.nan if seen is None else seen
         lines.append(f"{r['index']:>5} {r['steps']:>5}  {vals}  {decider:>10}  {seen:>+6.1f}  "
                      f"{m.get(f'baseline/{decider}', math.nan):>13.4g}  {m.get('divergence/teacher_rms', math.nan):>11.4g}  "
-                     f"{r['verdict']:>7}  {secs:>7.1f}")
+                     f"{r['verdict']:>7}  {secs:>7.1f}  {count_text(m.get('size/trainable_params')):>8}  "
+                     f"{bytes_text(m.get('size/saved_bytes')):>8}")
     chosen = summary["chosen"]
     floors = ", ".join(f"{k} {ref['floor'].get(k, math.nan):.4g}" for k in judged)
+    lines.append(f"students: {summary.get('students', 'full')} (trained: parameters that train; saved: bytes a stage "
+                 "writes for its student)")
     lines.append(f"floor (data vs data): {floors}")
     lines.append("rule: " + rule_text(summary))
     for w in summary.get("power_warnings") or []:
@@ -169,6 +172,22 @@ def _higher_better(metric: str) -> bool:
 
     p = METRIC_PROPS.get(metric)
     return bool(p and p.higher_better)
+
+
+def count_text(n) -> str:
+    """931k, 58.9k, 512; empty when not measured."""
+    if n is None or (isinstance(n, float) and math.isnan(n)):
+        return ""
+    n = int(n)
+    return f"{n / 1e6:.3g}M" if n >= 10 ** 6 else f"{n / 1e3:.3g}k" if n >= 10 ** 4 else str(n)
+
+
+def bytes_text(n) -> str:
+    """3.73 MB, 237 kB, 900 B (decimal units); empty when not measured."""
+    if n is None or (isinstance(n, float) and math.isnan(n)):
+        return ""
+    n = int(n)
+    return f"{n / 1e6:.3g} MB" if n >= 10 ** 6 else f"{n / 1e3:.3g} kB" if n >= 10 ** 3 else f"{n} B"
 
 
 def n_steps(n: int) -> str:
@@ -240,13 +259,16 @@ def _num(v, fmt=".4g") -> str:
 def compare_rows(label: str, s: dict, metric: str) -> list[list[str]]:
     ref = s["reference"]
     pm = lambda m, p: f"{_num(m.get(p + metric))} ± {_num(m.get(p + metric + '_se'), '.2g')}"  # noqa: E731
-    rows = [[label, s["method"], "teacher", str(ref.get("steps", "")), pm(ref["teacher"], ""), "", "", "", "", ""]]
+    students = s.get("students", "full")
+    method = s["method"] if students == "full" else f"{s['method']} · {students}"
+    rows = [[label, method, "teacher", str(ref.get("steps", "")), pm(ref["teacher"], ""), "", "", "", "", "", "", ""]]
     for r in s["stages"]:
         m = r["metrics"]
-        rows.append([label, r["method"], str(r["index"]), str(r["steps"]), pm(m, "quality/") if m else "",
+        rows.append([label, method, str(r["index"]), str(r["steps"]), pm(m, "quality/") if m else "",
                      _num(m.get(f"baseline/{metric}")), _num(m.get("divergence/teacher_rms")),
                      _num(m.get("divergence/teacher_median")), r["verdict"],
-                     f"{r['seconds']['train'] + r['seconds']['eval']:.1f}"])
+                     f"{r['seconds']['train'] + r['seconds']['eval']:.1f}", count_text(m.get("size/trainable_params")),
+                     bytes_text(m.get("size/saved_bytes"))])
     return rows
 
 
@@ -261,7 +283,7 @@ def comparison_table(runs: list[tuple[str, dict]], metric: str) -> str:
     """`distillrun compare`'s table: per run a teacher row and one row per stage, then a note with the floor,
     the chosen student and why the run stopped. Empty cells: not measured (a failed stage, no baseline)."""
     head = ["run", "method", "stage", "steps", f"{metric} ± se", "DDIM baseline", "diverg. rms", "diverg. median",
-            "verdict", "seconds"]
+            "verdict", "seconds", "trained", "saved"]
     table = format_table(head, [row for label, s in runs for row in compare_rows(label, s, metric)])
     notes = []
     for label, s in runs:

@@ -3,6 +3,7 @@
   distillrun recipes [NAME]                                  every recipe: purpose, CPU time, command; NAME: its YAML
   distillrun draw RUN_DIR [--stage N] [--beside-teacher] [--count N] [--seed S] [--out PATH]   (--stage 0: teacher)
   distillrun compare RUN_DIR [RUN_DIR ...] [--metric M] [--out DIR]
+  distillrun merge RUN_DIR [--stage N] [--out DIR]            an adapter student as one full network
 
 `draw` with --seed S and --count N feeds a stage the evaluation noise bank of eval.seed=S, eval.samples=N,
 so with the defaults (the run's own eval.seed and eval.samples) it repeats the samples the stage was scored on.
@@ -137,8 +138,10 @@ def pick_stage(run_dir: Path, summary: dict | None, stage: int | None) -> Path:
 
 def rebuild_student(folder: Path) -> tuple[object, dict]:
     """The saved network of a stage (or of the teacher/ folder) as the pipeline sampled it: a NetDenoiser,
-    wrapped by its method's `rebuild` for a stage."""
-    from . import checkpoint, teachers
+    wrapped by its method's `rebuild` for a stage. An adapter student's folder holds the adapter alone: the
+    network is its base teacher (the run's teacher/ folder, or the imported teacher's weights) plus that adapter,
+    refused when the teacher's content hash differs from the one the adapter names."""
+    from . import adapters, checkpoint, teachers
     from .denoiser import NetDenoiser
     from .methods import METHODS
     from .schedule import Schedule
@@ -151,15 +154,40 @@ def rebuild_student(folder: Path) -> tuple[object, dict]:
                          "on PYTHONPATH?") from None
     try:
         model = NetDenoiser(net, meta["parameterization"], Schedule(meta["schedule"]))
+        if "adapter" in meta:
+            load_base_teacher(model, folder, meta)
         if meta["stage"] > 0:  # a student; stage 0 is the teacher's own network
             if meta.get("method") not in METHODS:
                 raise ValueError(f"method {meta.get('method')!r} is not one of {', '.join(METHODS)}")
             model = METHODS[meta["method"]].rebuild(model, meta)
-        model.load_state_dict(state)
+        if "adapter" in meta:
+            adapters.Adapter.from_payload(state, meta["adapter"], str(folder / checkpoint.WEIGHTS_FILE)).apply(
+                adapters.core_network(model), override_key="(a run's own stage cannot override)")
+        else:
+            model.load_state_dict(state)
     except (KeyError, TypeError, ValueError, RuntimeError) as e:
+        if isinstance(e, (InputError, adapters.AdapterError)):
+            raise
         first = str(e).strip().splitlines()[0] if str(e).strip() else type(e).__name__
         raise InputError(f"{folder / 'model.json'}: does not describe the saved weights ({first})") from None
     return model.requires_grad_(False).eval(), meta
+
+
+def load_base_teacher(model, folder: Path, meta: dict) -> None:
+    """The base teacher's weights into `model` (a NetDenoiser) for an adapter student saved in `folder`."""
+    from . import checkpoint
+
+    base = meta.get("base") or {}
+    if "folder" in base:
+        teacher_dir = folder.parent / base["folder"]
+        state, _ = checkpoint.load_model_files(teacher_dir, f"the adapter in {folder} needs its run's teacher")
+        model.load_state_dict(state)
+    elif "weights" in base:
+        state = checkpoint.read_tensors(base["weights"], f"the adapter in {folder} needs its imported teacher's "
+                                        "weights there")
+        model.net.load_state_dict(state)
+    else:
+        raise InputError(f"{folder / 'model.json'}: an adapter student without a 'base' entry (where its teacher is)")
 
 
 # --------------------------------------------------------------------------------------------------- draw
@@ -318,6 +346,33 @@ def cmd_compare(args) -> int:
     return 0
 
 
+# -------------------------------------------------------------------------------------------------- merge
+def cmd_merge(args) -> int:
+    """Write an adapter student as a full network: teacher + weight changes folded into plain weights, in the
+    same folder format (weights.safetensors + model.json) as a full student's stage."""
+    from . import adapters, checkpoint
+
+    _, summary = open_run(args.run_dir)
+    folder = pick_stage(args.run_dir, summary, args.stage)
+    _, meta = checkpoint.load_model_files(folder)
+    if "adapter" not in meta:
+        raise InputError(f"{folder}: holds a full student already (its {checkpoint.WEIGHTS_FILE} is the whole "
+                         "network); merge is for adapter students")
+    out = args.out if args.out is not None else args.run_dir / "merged" / folder.name
+    if out.exists() and not out.is_dir():
+        raise InputError(f"--out {out}: exists and is not a folder")
+    model, meta = rebuild_student(folder)
+    merged = adapters.merged_copy(model)
+    full = {k: v for k, v in meta.items() if k not in ("adapter", "base", "format", "sha256")}
+    full["merged_from"] = {"folder": str(folder.resolve()), "adapter_sha256": meta["sha256"],
+                           "base_sha256": meta["adapter"]["base_sha256"]}
+    written = checkpoint.save_model(out, merged.state_dict(), full)
+    size = (out / checkpoint.WEIGHTS_FILE).stat().st_size
+    print(f"merged stage {meta['stage']} ({meta['method']}, {meta['steps']} steps) of {args.run_dir}: "
+          f"{out / checkpoint.WEIGHTS_FILE} ({size} bytes, sha256 {written['sha256'][:12]}) + {checkpoint.MODEL_FILE}")
+    return 0
+
+
 # ------------------------------------------------------------------------------------------------ parsing
 DESCRIPTIONS = {
     "recipes": "List the ready-made recipes: purpose, expected CPU time and the command that runs each.",
@@ -326,6 +381,8 @@ DESCRIPTIONS = {
             "With the default --seed and --count it repeats the samples the stage was scored on.",
     "compare": "One table with every stage of one or more runs, and plots: quality versus steps (students and the "
                "teacher's DDIM baseline), divergence per stage, and the stages' samples side by side.",
+    "merge": "Write an adapter student (adapter=lowrank) as one full network: the teacher with the adapter's weight "
+             "changes folded in, as weights.safetensors + model.json, for users who want a single file.",
 }
 
 
@@ -344,6 +401,11 @@ def _parser(verb: str) -> argparse.ArgumentParser:
                        "default count this repeats the samples the stage was scored on)")
         p.add_argument("--out", type=Path, metavar="PATH", help="a .npy file or an existing folder (default: "
                        "RUN_DIR/drawn/stage-NN_seed-S_n-N.npy); the picture goes beside it as .png")
+    elif verb == "merge":
+        p.add_argument("run_dir", type=Path, metavar="RUN_DIR", help="a finished run folder with adapter students")
+        p.add_argument("--stage", type=int, metavar="N", help="stage index (default: the chosen student)")
+        p.add_argument("--out", type=Path, metavar="DIR", help="folder for weights.safetensors + model.json "
+                       "(default: RUN_DIR/merged/stage-NN)")
     else:
         p.add_argument("run_dirs", type=Path, nargs="+", metavar="RUN_DIR", help="one or more finished run folders")
         p.add_argument("--metric", metavar="M", help="quality metric (default: the first run's stop.metric)")
@@ -352,15 +414,16 @@ def _parser(verb: str) -> argparse.ArgumentParser:
     return p
 
 
-COMMANDS = {"recipes": cmd_recipes, "draw": cmd_draw, "compare": cmd_compare}
+COMMANDS = {"recipes": cmd_recipes, "draw": cmd_draw, "compare": cmd_compare, "merge": cmd_merge}
 
 
 def main(verb: str, argv: list[str]) -> int:
+    from .adapters import AdapterError
     from .checkpoint import CheckpointError
     from .pipeline import DataError
 
     try:
         return COMMANDS[verb](_parser(verb).parse_args(argv))
-    except (InputError, CheckpointError, DataError) as e:
+    except (InputError, CheckpointError, DataError, AdapterError) as e:
         print(f"distillrun {verb}: error: {e}", file=sys.stderr)
         return EXIT_BAD_INPUT

@@ -27,10 +27,11 @@ GROUP_OPTIONS = {
     "data": ["archipelago", "spiral", "rings", "digits", "tiles", "array", "image_folder", "nope"],
     "net": ["mlp", "unet", "nope"], "teacher": ["train", "oracle", "import"], "method": ["progressive", "consistency"],
     "stop": ["relative", "absolute"], "tracking": ["local", "off"], "compute": ["cpu", "gpu"],
+    "adapter": ["full", "lowrank"],
 }
 NODES = {"data": config.DataConfig, "net": config.NetConfig, "teacher": config.TeacherConfig,
          "method": ConsistencyConfig, "eval": config.EvalConfig, "stop": config.StopConfig,
-         "tracking": config.TrackingConfig, "compute": config.ComputeConfig}
+         "tracking": config.TrackingConfig, "compute": config.ComputeConfig, "adapter": config.AdapterConfig}
 NAMES = ["archipelago", "digits", "mlp", "unet", "cosine", "linear", "v", "eps", "x0", "ddim", "ancestral", "heun",
          "euler", "snr_trunc", "l2", "pseudo_huber", "inverse_gap", "uniform", "sw2", "mmd2", "fd", "nll_gap",
          "relative", "absolute", "cpu", "cuda", "auto", "bf16", "fp32", "train", "oracle", "import", "progressive",

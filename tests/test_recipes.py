@@ -28,6 +28,7 @@ IMAGE_TINY = ["net.base=8", "teacher.batch_size=32", "method.batch_size=32", "ev
 # What each recipe's name promises: (data.name, net.kind, method.name or None for a sweep, teacher.source).
 EXPECTED = {
     "archipelago_progressive": ("archipelago", "mlp", "progressive", "train"),
+    "archipelago_adapters": ("archipelago", "mlp", "progressive", "train"),
     "archipelago_consistency": ("archipelago", "mlp", "consistency", "train"),
     "archipelago_both": ("archipelago", "mlp", None, "oracle"),
     "digits_progressive": ("digits", "unet", "progressive", "train"),
@@ -143,7 +144,8 @@ def run_recipe(name, run_dir, *extra):
     return check_run_folder(run_dir, method)
 
 
-@pytest.mark.parametrize("name", ["archipelago_progressive", "archipelago_consistency", "own_data"])
+@pytest.mark.parametrize("name", ["archipelago_progressive", "archipelago_consistency", "own_data",
+                                  "archipelago_adapters"])
 def test_2d_recipe_runs_end_to_end(name, tmp_path, user_files):
     summary = run_recipe(name, tmp_path / "run", *user_files.get(name, []))
     steps = [r["steps"] for r in summary["stages"]]  # the stop rule may end the run early: a prefix of the plan

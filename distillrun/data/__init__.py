@@ -73,6 +73,13 @@ def _archipelago(cfg) -> Dataset:
     return Dataset(cfg.name, mix.sample(cfg.n_train, torch.Generator().manual_seed(cfg.seed))[0], mixture=mix)
 
 
+def _archipelago_moved(cfg) -> Dataset:
+    from .mixture import archipelago_moved
+
+    mix = archipelago_moved()
+    return Dataset(cfg.name, mix.sample(cfg.n_train, torch.Generator().manual_seed(cfg.seed))[0], mixture=mix)
+
+
 def _spiral(cfg) -> Dataset:
     from .shapes2d import spiral
     return Dataset(cfg.name, spiral(cfg.n_train, cfg.seed))
@@ -105,6 +112,7 @@ def _image_folder(cfg) -> Dataset:
 
 DATASETS: dict[str, DataSource] = {
     "archipelago": DataSource(_archipelago, known_density=True),
+    "archipelago_moved": DataSource(_archipelago_moved, known_density=True),
     "spiral": DataSource(_spiral),
     "rings": DataSource(_rings),
     "digits": DataSource(_digits, images=True),

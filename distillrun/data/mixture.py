@@ -98,3 +98,17 @@ def archipelago() -> GaussianMixture:
     shapes = [(0.22, 0.10, 0.6), (0.12, 0.12, 0.0), (0.20, 0.09, -0.5), (0.10, 0.18, 0.3), (0.25, 0.08, 0.1), (0.14, 0.11, 1.1)]
     covs = [_rotated_cov(*s) for s in shapes]
     return GaussianMixture(torch.tensor(weights), torch.tensor(means), torch.tensor(covs))
+
+
+# Islands moved in archipelago_moved: index -> offset (the largest island and a mid-sized one).
+MOVED_ISLANDS = {0: (0.45, -0.55), 3: (-0.35, 0.60)}
+
+
+def archipelago_moved() -> GaussianMixture:
+    """The archipelago with two islands moved (MOVED_ISLANDS), same weights and shapes: a shifted variant of the
+    data to fine-tune a teacher on (e.g. to test whether a speed adapter transfers to the fine-tuned teacher)."""
+    mix = archipelago()
+    means = mix.means.clone()
+    for i, (dx, dy) in MOVED_ISLANDS.items():
+        means[i] += torch.tensor([dx, dy], dtype=means.dtype)
+    return GaussianMixture(mix.weights, means, mix.covs)
