@@ -6,7 +6,7 @@ denoiser in `nets/oracle.py` is one).
 """
 from __future__ import annotations
 
-from typing import Protocol
+from typing import NamedTuple, Protocol
 
 import torch
 from torch import nn
@@ -17,6 +17,22 @@ PARAMETERIZATIONS = ("v", "eps", "x0")
 # eps-prediction divides by alpha_t to recover x0; at the top of the cosine schedule alpha_t = 0.
 # Clamp so the division stays finite (common practice; v- and x0-prediction need no clamp).
 ALPHA_FLOOR = 1e-4
+
+
+class GuidanceCond(NamedTuple):
+    """The condition of a guidance-conditioned student: class labels (B,) and guidance weights w (B,), passed
+    wherever a plain label tensor goes (cond=...). w follows x_w = (1 + w) x(z, c) - w x(z, null): w = 0 is
+    the plain conditional model (the other common convention, a scale s = 1 + w, has s = 1 there)."""
+
+    labels: torch.Tensor
+    w: torch.Tensor
+
+
+def split_cond(cond) -> tuple[torch.Tensor | None, torch.Tensor | None]:
+    """(labels or None, w or None) from a cond that is None, a label tensor or a GuidanceCond."""
+    if isinstance(cond, GuidanceCond):
+        return cond.labels, cond.w
+    return cond, None
 
 
 class Denoiser(Protocol):

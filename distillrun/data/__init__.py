@@ -15,7 +15,7 @@ from .mixture import GaussianMixture, archipelago
 class Dataset:
     name: str
     x: torch.Tensor  # (N, d) points or (N, C, H, W) images in [-1, 1]
-    labels: torch.Tensor | None = None  # (N,) int64 class labels, if any
+    labels: torch.Tensor | None = None  # (N,) int64 class labels, if any (archipelago: the island index)
     mixture: GaussianMixture | None = None  # exact density (archipelago only)
 
     @property
@@ -65,7 +65,7 @@ def load_dataset(cfg) -> Dataset:
     g = torch.Generator().manual_seed(cfg.seed)
     if cfg.name == "archipelago":
         mix = archipelago()
-        return Dataset(cfg.name, mix.sample(cfg.n_train, g)[0], mixture=mix)
+        return Dataset(cfg.name, *mix.sample(cfg.n_train, g), mixture=mix)  # labels: the islands
     if cfg.name == "spiral":
         return Dataset(cfg.name, shapes2d.spiral(cfg.n_train, cfg.seed))
     if cfg.name == "rings":
