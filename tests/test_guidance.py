@@ -237,7 +237,12 @@ def test_label_dropout_rate_and_no_draw_at_zero():
 
 @pytest.mark.slow
 def test_trained_teacher_with_label_dropout_learns_the_unconditional_denoiser():
-    _trained_teacher_check()
+    # Ho & Salimans 2022, Alg. 1: with label dropout one network also learns the unconditional denoiser.
+    # Measured (1500 iterations, MLP 128 x 3): RMS x0 error of the null-label output against the exact unconditional
+    # denoiser 0.052 with dropout 0.2, 0.64 without (the null embedding never trained). Tolerance 0.1 (data std ~1).
+    errs = _trained_teacher_check()
+    assert errs[0.2] < 0.1, errs
+    assert errs[0.0] > 5 * errs[0.2], errs
 
 
 def _trained_teacher_check(iterations: int = 1500):
