@@ -1,0 +1,204 @@
+"""Guided distillation (Meng et al. 2023, "On Distillation of Guided Diffusion Models"): a classifier-free-guided
+teacher, which pays two network evaluations per step, becomes ONE guidance-conditioned few-step student.
+
+Guidance convention (as everywhere in distillrun, see distillrun.guidance): x_w = (1 + w) x(z, c) - w x(z, null),
+w = 0 the plain conditional model; in the other common convention the scale is s = 1 + w.
+
+Stage one ("guidance fit"): a copy of the teacher's network with a guidance-weight embedding (zero effect at the
+start) learns, in one pass, the guided teacher's prediction at the same (x_t, t, label) for w drawn per example
+from [w_min, w_max]; it samples with the teacher's step count at half the evaluations. Then progressive halving
+(Salimans & Ho 2022, Alg. 2) of that w-conditioned student, w resampled per example in every batch, down to the
+target steps or until the stop rule ends it.
+
+Every stage is scored at a grid of guidance weights (see `evaluate_guided`): the reference at each w is the
+guided teacher at full steps with the same sampler; classifier-free guidance does not sample the tilted density
+p(x | c)^(1 + w) p(x)^(-w) of the clean data, so the data are not the reference here.
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import replace
+
+import torch
+
+from .. import evaluate, metrics, stopping
+from ..denoiser import GuidanceCond, NetDenoiser, target_for
+from ..distributed import current_shard
+from ..guidance import Guided, WithWeight, stochastic_sample
+from ..samplers import sample, uniform_grid
+from .teacher import draw_noisy
+
+STUDENT_SAMPLERS = ("ddim", "stochastic")  # stochastic: Meng et al. 2023's 2-step-then-renoise sampler
+
+
+def w_key(w: float) -> str:
+    """The name of a guidance weight inside metric names: w0, w1.5, w4 (metric name scheme: guided/w<w>/...)."""
+    return f"w{float(w):g}"
+
+
+def with_guidance_weights(draw, w_min: float, w_max: float):
+    """A batch source whose labels become GuidanceCond(labels, w) with w ~ U[w_min, w_max] per example, drawn
+    from the loop's generator after the batch (so a resumed stage draws the same weights)."""
+    def draw_w(generator):
+        x0, labels = draw(generator)
+        w = w_min + (w_max - w_min) * torch.rand(x0.shape[0], generator=generator, dtype=torch.float64)
+        return x0, GuidanceCond(labels, w.to(device=x0.device, dtype=x0.dtype))
+    return draw_w
+
+
+def guidance_fit_loss(teacher: Guided):
+    """Stage one: mean squared error, in the student's output space, between the student's one-pass output at
+    (x_t, t, label, w) and the guided teacher's (1 + w) x(z, c) - w x(z, null) (two evaluations), t ~ U(0, 1],
+    x_t from the data (Meng et al. 2023, Sec. 4.1, first stage)."""
+    def loss(model: NetDenoiser, target_model, batch, generator):
+        x0, cond = batch
+        t, _, alpha, sigma, x_t = draw_noisy(x0, model.schedule, generator)
+        x0, cond, t, alpha, sigma, x_t = current_shard().local(x0, cond, t, alpha, sigma, x_t)
+        with torch.no_grad():
+            x0_w, eps_w = teacher.predict(x_t, t, cond)
+        target = target_for(model.parameterization, x0_w, eps_w, alpha, sigma)
+        return torch.mean((model(x_t, t, cond) - target) ** 2)
+    return loss
+
+
+def student_sampler(student, steps: int, w: float, kind: str = "ddim", seed: int = 0):
+    """sample_fn(noise, labels) for a w-conditioned student at `steps` steps (steps evaluations)."""
+    den = WithWeight(student, w)
+    if kind == "stochastic":
+        def draw(noise, labels):
+            return stochastic_sample(den, noise, steps, labels, torch.Generator().manual_seed(seed + steps))
+        return draw
+    return lambda noise, labels: sample(den, noise, uniform_grid(steps), "ddim", cond=labels)
+
+
+def teacher_sampler(teacher, num_classes: int, steps: int, w: float, sampler: str = "ddim"):
+    """sample_fn(noise, labels) for the guided teacher at `steps` steps (2 evaluations per step)."""
+    den = Guided(teacher, num_classes, w)
+    return lambda noise, labels: sample(den, noise, uniform_grid(steps), sampler, cond=labels,
+                                        generator=torch.Generator().manual_seed(steps))
+
+
+def baseline_steps(student_nfe: int) -> int:
+    """Steps of the guided teacher that cost the student's evaluations (2 per step); at least 1 (2 evaluations)."""
+    return max(student_nfe // 2, 1)
+
+
+def per_label_fidelity(bench, x: torch.Tensor, labels: torch.Tensor) -> torch.Tensor | None:
+    """p(intended label | sample) per sample: the exact posterior of the mixture (2D), or the feature network's
+    classifier for labelled images; None when neither exists."""
+    if bench.mixture is not None:
+        return bench.mixture.responsibilities(x)[torch.arange(len(x)), labels].float()
+    if bench.feature_net is not None and getattr(bench.feature_net, "arch", {}).get("n_classes", 0) > 0:
+        with torch.no_grad():
+            return torch.softmax(bench.feature_net(x), dim=1)[torch.arange(len(x)), labels].float()
+    return None
+
+
+def label_stats(bench, x: torch.Tensor, labels: torch.Tensor, num_classes: int) -> dict[str, float]:
+    """fidelity (mean p(intended label | x)), diversity (root mean squared distance to the label's own mean: the
+    spread within a label, sqrt of the trace of its covariance), both overall (mean over labels) and per label."""
+    out: dict[str, float] = {}
+    fid = per_label_fidelity(bench, x, labels)
+    flat = x.flatten(1).double()
+    divs, fids = [], []
+    for c in range(num_classes):
+        rows = labels == c
+        if int(rows.sum()) < 2:
+            continue
+        xc = flat[rows]
+        d = float(((xc - xc.mean(0)) ** 2).sum(1).mean().sqrt())
+        out[f"label{c}/diversity"] = d
+        divs.append(d)
+        if fid is not None:
+            out[f"label{c}/fidelity"] = float(fid[rows].mean())
+            fids.append(out[f"label{c}/fidelity"])
+    out["diversity"] = sum(divs) / len(divs) if divs else math.nan
+    if fids:
+        out["fidelity"] = sum(fids) / len(fids)
+    return out
+
+
+def guided_reference(bench, teacher, num_classes: int, teacher_steps: int, w_grid, sampler: str,
+                     second_noise: torch.Tensor) -> dict:
+    """Per w, the guided teacher at full steps on the bench's noise (the same-noise reference) and on a second,
+    independent noise bank (the distribution a student is scored against; the teacher's own score against it is
+    the finite-sample floor the stop rule compares with). Cached in bench.cache under 'guided@<w>' keys."""
+    out = {}
+    for w in w_grid:
+        fn = teacher_sampler(teacher, num_classes, teacher_steps, w, sampler)
+        same, _ = evaluate.cached_draw(bench, f"guided_teacher@{teacher_steps}/{w_key(w)}", fn)
+        key = f"guided_reference@{teacher_steps}/{w_key(w)}"
+        if key not in bench.cache:
+            bench.cache[key] = evaluate.draw(fn, replace(bench, noise=second_noise, cache={}))
+        out[w] = (same, bench.cache[key])
+    return out
+
+
+def bench_for(bench, reference: torch.Tensor):
+    """A copy of the run's bench whose reference set is `reference` (guided-teacher samples) and without the
+    data's density (nll_gap and mode coverage score the data, not a guided teacher)."""
+    feats = None
+    if bench.feature_net is not None:
+        from ..features import features
+        feats = features(bench.feature_net, reference)
+    ref = feats if feats is not None else reference
+    return replace(bench, reference=reference, reference_feats=feats, mixture=None, entropy=None,
+                   reference_within=None, cache={}, bandwidth=metrics.median_bandwidth(ref, ref, seed=bench.seed))
+
+
+def score(bench_w, bench, x, same_noise_teacher, labels, num_classes) -> dict[str, float]:
+    """Quality against the guided reference, same-noise distance to the guided teacher, fidelity and diversity."""
+    out = evaluate.quality(bench_w, x)
+    d = evaluate.divergence(bench, x, same_noise_teacher, "teacher")
+    out.update({k.removeprefix("divergence/"): v for k, v in d.items()})
+    out.update(label_stats(bench, x, labels, num_classes))
+    return out
+
+
+def evaluate_guided(bench, sample_student, teacher, num_classes: int, steps: int, teacher_steps: int, w_grid,
+                    reference: dict, baseline: bool = True) -> dict[str, float]:
+    """All per-w metrics of a student that samples at `steps` steps (= evaluations), named
+    guided/w<w>/{student,baseline,teacher}/<metric> and guided/w<w>/{...}/label<c>/<metric>, with nfe entries:
+      sw2, mmd2 (+ _se): against the guided teacher's full-step samples from independent noise
+      teacher_rms, teacher_median, teacher_p90, teacher_switch: same-noise distance to the guided teacher
+      fidelity: mean p(intended label | sample); diversity: spread within a label
+    sample_student(w) -> sample_fn(noise, labels)."""
+    labels = bench.cond
+    out: dict[str, float] = {}
+    for w in w_grid:
+        same, ref = reference[w]
+        bench_w = bench_for(bench, ref)
+        k = f"guided/{w_key(w)}"
+        x = evaluate.draw(sample_student(w), bench)
+        for name, v in score(bench_w, bench, x, same, labels, num_classes).items():
+            out[f"{k}/student/{name}"] = v
+        out[f"{k}/student/nfe"] = float(steps)
+        for name, v in score(bench_w, bench, same, same, labels, num_classes).items():
+            if not name.startswith("teacher_"):
+                out[f"{k}/teacher/{name}"] = v
+        out[f"{k}/teacher/nfe"] = float(2 * teacher_steps)
+        if baseline:
+            b_steps = baseline_steps(steps)
+            base = evaluate.cached_draw(bench, f"guided_teacher@{b_steps}/{w_key(w)}",
+                                        teacher_sampler(teacher, num_classes, b_steps, w, "ddim"))[0]
+            for name, v in score(bench_w, bench, base, same, labels, num_classes).items():
+                out[f"{k}/baseline/{name}"] = v
+            out[f"{k}/baseline/nfe"] = float(2 * b_steps)
+    return out
+
+
+def judge_guided(metrics_: dict, w_grid, metric: str, tolerance: float, mode: str, z: float,
+                 judge_w: float | None) -> tuple[stopping.Verdict, float]:
+    """The stop rule at each w of the grid (student's `metric` against the guided reference vs the teacher's own
+    value there); the verdict of the chosen w, or of the worst w (smallest margin) when judge_w is None."""
+    verdicts = {}
+    for w in ([judge_w] if judge_w is not None else w_grid):
+        k = f"guided/{w_key(w)}"
+        q = {m: metrics_.get(f"{k}/student/{m}", math.nan) for m in (metric, f"{metric}_se")}
+        t = {m: metrics_.get(f"{k}/teacher/{m}", math.nan) for m in (metric, f"{metric}_se")}
+        v = stopping.judge(q, t, metric, tolerance, mode, z)
+        verdicts[w] = replace(v, reason=f"at w={w:g}: {v.reason}")
+    order = {stopping.FAILED: 0, stopping.OVER: 1, stopping.WITHIN: 2}
+    w_worst = min(verdicts, key=lambda w: (order[verdicts[w].verdict],
+                                           verdicts[w].margin if math.isfinite(verdicts[w].margin) else -math.inf))
+    return verdicts[w_worst], w_worst
