@@ -188,3 +188,35 @@ def test_stage_one_student_reproduces_the_guided_teacher_across_w():
     for w, e in errs.items():
         assert e["student"] < 0.1, errs
     assert errs[4.0]["w_blind"] > 4 * errs[4.0]["student"], errs
+
+
+def test_w_student_from_teacher_network_keeps_its_outputs():
+    torch.manual_seed(0)
+    teacher = NetDenoiser(build_net("mlp", (2,), K, width=32, depth=2), "v", Schedule("cosine"))
+    student = G.w_student(teacher)
+    assert student.net.arch["guidance"] and not teacher.net.arch.get("guidance")
+    x, t, labels = torch.randn(7, 2), torch.rand(7), torch.arange(7) % K
+    with torch.no_grad():
+        for w in (0.0, 3.0):
+            torch.testing.assert_close(WithWeight(student, w).predict(x, t, labels)[0], teacher.predict(x, t, labels)[0],
+                                       rtol=0, atol=0)
+    again = G.w_student(student)
+    assert again is not student and again.net.arch["guidance"]
+    with pytest.raises(ValueError, match="imported teacher"):
+        G.w_student(NetDenoiser(torch.nn.Linear(2, 2), "v", Schedule("cosine")))
+
+
+def test_stage_plan_fit_then_halvings():
+    assert G.stage_plan(256, 4) == [(256, 256), (128, 256), (64, 128), (32, 64), (16, 32), (8, 16), (4, 8)]
+    assert G.stage_plan(8, 4) == [(8, 8), (4, 8)]
+
+
+def test_draw_request_checks_label_and_w_range():
+    meta = {"net": {"num_classes": 6}, "guidance": {"w_min": 0.0, "w_max": 4.0}}
+    G.check_request(meta, 5, 4.0)
+    with pytest.raises(ValueError, match="--label 6: unknown label; valid: 0..5"):
+        G.check_request(meta, 6, 1.0)
+    with pytest.raises(ValueError, match=r"--w 4.5: outside .* \[0, 4\]"):
+        G.check_request(meta, 0, 4.5)
+    with pytest.raises(ValueError, match="--w -1"):
+        G.check_request(meta, 0, -1.0)

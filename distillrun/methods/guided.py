@@ -16,8 +16,10 @@ p(x | c)^(1 + w) p(x)^(-w) of the clean data, so the data are not the reference 
 """
 from __future__ import annotations
 
+import copy
 import math
-from dataclasses import replace
+from dataclasses import dataclass, field, replace
+from typing import Optional
 
 import torch
 
@@ -29,6 +31,98 @@ from ..samplers import sample, uniform_grid
 from .teacher import draw_noisy
 
 STUDENT_SAMPLERS = ("ddim", "stochastic")  # stochastic: Meng et al. 2023's 2-step-then-renoise sampler
+
+
+@dataclass
+class GuidedConfig:
+    """method=guided. Guidance weight w: x_w = (1 + w) x(z, c) - w x(z, null), w = 0 the conditional model
+    (scale convention: s = 1 + w, so w_min=0, w_max=4 is s from 1 to 5)."""
+
+    name: str = "guided"
+    target_steps: int = 4  # halve down to this; teacher.steps / target_steps must be a power of two
+    w_min: float = 0.0  # students are trained for w ~ U[w_min, w_max] per example and may only be asked inside it
+    w_max: float = 4.0
+    w_grid: list[float] = field(default_factory=lambda: [0.0, 1.0, 2.0, 4.0])  # every stage is scored at these w
+    judge_w: Optional[float] = None  # the w the stop rule judges; null: the worst w of w_grid
+    fit_iterations: int = 1000  # stage one (the guidance fit)
+    fit_lr: float = 1e-3
+    iterations: int = 600  # per halving stage
+    batch_size: int = 512
+    lr: float = 3e-4  # decays linearly to 0 within each stage (Salimans & Ho 2022)
+    loss: str = "snr_trunc"  # halving loss weight: snr_trunc (max(SNR, 1)) | v (SNR + 1)
+    sampler: str = "ddim"  # how students sample: ddim | stochastic (Meng et al. 2023: 2-step DDIM, re-noise 1 step)
+    ema_decay: float = 0.0
+    grad_clip: float = 1.0
+
+
+def validate_config(cfg) -> None:
+    """Checks of method=guided, before any work; raises config.ConfigError naming the key."""
+    from ..config import ConfigError
+
+    m = cfg.method
+    for key in ("w_min", "w_max", "fit_lr", "lr"):
+        if not math.isfinite(float(m[key])):
+            raise ConfigError(f"method.{key}", m[key], "must be a finite number")
+    if m.w_min < 0 or m.w_max <= m.w_min:
+        raise ConfigError("method.w_max", m.w_max, f"must be above method.w_min={m.w_min} (>= 0): the w range is "
+                          "empty or inverted (w = 0 is the conditional model; scale s = 1 + w)")
+    grid = list(m.w_grid)
+    if not grid or any(not (m.w_min <= w <= m.w_max) for w in grid) or len(set(grid)) != len(grid):
+        raise ConfigError("method.w_grid", grid, f"must be distinct weights inside [w_min, w_max] = "
+                          f"[{m.w_min:g}, {m.w_max:g}]")
+    if m.judge_w is not None and m.judge_w not in grid:
+        raise ConfigError("method.judge_w", m.judge_w, f"must be null (the worst w) or one of method.w_grid={grid}")
+    if m.sampler not in STUDENT_SAMPLERS:
+        raise ConfigError("method.sampler", m.sampler, f"must be one of {', '.join(STUDENT_SAMPLERS)}")
+    if m.loss not in ("snr_trunc", "v"):
+        raise ConfigError("method.loss", m.loss, "must be one of snr_trunc, v")
+    ratio = cfg.teacher.steps / m.target_steps if m.target_steps > 0 else 0
+    if m.target_steps < 1 or ratio != int(ratio) or ratio < 2 or int(ratio) & (int(ratio) - 1):
+        raise ConfigError("method.target_steps", m.target_steps,
+                          f"must be teacher.steps={cfg.teacher.steps} divided by a power of two >= 2")
+    if not 0 <= m.ema_decay < 1:
+        raise ConfigError("method.ema_decay", m.ema_decay, "must be in [0, 1)")
+    if not cfg.net.class_cond:
+        raise ConfigError("net.class_cond", cfg.net.class_cond, "method=guided distils a class-conditional teacher: "
+                          "set net.class_cond=true (and labelled data)")
+    if cfg.teacher.source == "train" and cfg.teacher.label_dropout <= 0:
+        raise ConfigError("teacher.label_dropout", cfg.teacher.label_dropout, "method=guided needs the unconditional "
+                          "model too: train the teacher with label dropout in (0, 1), e.g. 0.15")
+    if cfg.stop.metric not in ("sw2", "mmd2", "fd"):
+        raise ConfigError("stop.metric", cfg.stop.metric, "method=guided scores students against the guided teacher's "
+                          "samples, not the data's density: use sw2, mmd2 or fd (images)")
+
+
+def check_request(meta: dict, label: int | None, w: float | None) -> None:
+    """A draw request against what the student was trained for: the label among its classes, w inside
+    [w_min, w_max]; ValueError with one line naming the option otherwise."""
+    g = meta.get("guidance") or {}
+    k = meta["net"]["num_classes"]
+    if label is not None and not 0 <= label < k:
+        raise ValueError(f"--label {label}: unknown label; valid: 0..{k - 1}")
+    if w is not None and not (g.get("w_min", 0.0) <= w <= g.get("w_max", 0.0)):
+        raise ValueError(f"--w {w:g}: outside the guidance weights this student was trained on, "
+                         f"[{g.get('w_min', 0.0):g}, {g.get('w_max', 0.0):g}] (w = 0 is the conditional model)")
+
+
+def w_student(previous: NetDenoiser) -> NetDenoiser:
+    """A trainable guidance-conditioned copy of `previous`: the same network with a w-embedding whose effect starts
+    at zero (stage one, from the teacher's network), or a plain copy when `previous` already has one."""
+    net = previous.net
+    arch = getattr(net, "arch", None)
+    if arch is None or not hasattr(net, "embed"):
+        raise ValueError("method=guided needs a distillrun network (net=mlp or net=unet) to add the guidance-weight "
+                         "embedding to; an imported teacher cannot be distilled by it")
+    if arch.get("guidance"):
+        student = copy.deepcopy(previous)
+    else:
+        new = type(net)(**{**arch, "guidance": True}).to(next(net.parameters()).device)
+        missing, unexpected = new.load_state_dict(net.state_dict(), strict=False)
+        if unexpected or any(not k.startswith("embed.guidance_mlp") for k in missing):
+            raise ValueError(f"the teacher's weights do not fit its guidance-conditioned copy "
+                             f"(unexpected {unexpected[:2]}, missing {missing[:2]})")
+        student = NetDenoiser(new, previous.parameterization, previous.schedule)
+    return student.requires_grad_(True)
 
 
 def w_key(w: float) -> str:
@@ -61,14 +155,30 @@ def guidance_fit_loss(teacher: Guided):
     return loss
 
 
+def student_nfe(steps: int, kind: str = "ddim") -> int:
+    """Network evaluations per sample of a student distilled for `steps` steps under sampler `kind`."""
+    return 2 * steps if kind == "stochastic" else steps
+
+
 def student_sampler(student, steps: int, w: float, kind: str = "ddim", seed: int = 0):
-    """sample_fn(noise, labels) for a w-conditioned student at `steps` steps (steps evaluations)."""
+    """sample_fn(noise, labels) for a w-conditioned student distilled for `steps` steps. ddim: its own grid
+    (steps evaluations). stochastic: Meng et al.'s sampler on a grid of 2 * steps, whose deterministic double-length
+    steps are the ones this student was trained to take (2 * steps evaluations)."""
     den = WithWeight(student, w)
     if kind == "stochastic":
         def draw(noise, labels):
-            return stochastic_sample(den, noise, steps, labels, torch.Generator().manual_seed(seed + steps))
+            return stochastic_sample(den, noise, 2 * steps, labels, torch.Generator().manual_seed(seed + steps))
         return draw
     return lambda noise, labels: sample(den, noise, uniform_grid(steps), "ddim", cond=labels)
+
+
+def stage_plan(teacher_steps: int, target_steps: int) -> list[tuple[int, int]]:
+    """(student steps, stage teacher's steps) per stage: the guidance fit at the teacher's steps, then halvings."""
+    plan, steps = [(teacher_steps, teacher_steps)], teacher_steps
+    while steps > target_steps:
+        steps //= 2
+        plan.append((steps, 2 * steps))
+    return plan
 
 
 def teacher_sampler(teacher, num_classes: int, steps: int, w: float, sampler: str = "ddim"):
@@ -155,9 +265,9 @@ def score(bench_w, bench, x, same_noise_teacher, labels, num_classes) -> dict[st
     return out
 
 
-def evaluate_guided(bench, sample_student, teacher, num_classes: int, steps: int, teacher_steps: int, w_grid,
+def evaluate_guided(bench, sample_student, teacher, num_classes: int, nfe: int, teacher_steps: int, w_grid,
                     reference: dict, baseline: bool = True) -> dict[str, float]:
-    """All per-w metrics of a student that samples at `steps` steps (= evaluations), named
+    """All per-w metrics of a student whose sampler costs `nfe` evaluations per sample, named
     guided/w<w>/{student,baseline,teacher}/<metric> and guided/w<w>/{...}/label<c>/<metric>, with nfe entries:
       sw2, mmd2 (+ _se): against the guided teacher's full-step samples from independent noise
       teacher_rms, teacher_median, teacher_p90, teacher_switch: same-noise distance to the guided teacher
@@ -172,13 +282,13 @@ def evaluate_guided(bench, sample_student, teacher, num_classes: int, steps: int
         x = evaluate.draw(sample_student(w), bench)
         for name, v in score(bench_w, bench, x, same, labels, num_classes).items():
             out[f"{k}/student/{name}"] = v
-        out[f"{k}/student/nfe"] = float(steps)
+        out[f"{k}/student/nfe"] = float(nfe)
         for name, v in score(bench_w, bench, same, same, labels, num_classes).items():
             if not name.startswith("teacher_"):
                 out[f"{k}/teacher/{name}"] = v
         out[f"{k}/teacher/nfe"] = float(2 * teacher_steps)
         if baseline:
-            b_steps = baseline_steps(steps)
+            b_steps = baseline_steps(nfe)
             base = evaluate.cached_draw(bench, f"guided_teacher@{b_steps}/{w_key(w)}",
                                         teacher_sampler(teacher, num_classes, b_steps, w, "ddim"))[0]
             for name, v in score(bench_w, bench, base, same, labels, num_classes).items():

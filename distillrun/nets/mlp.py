@@ -30,7 +30,7 @@ def fourier_features(t: torch.Tensor, n_features: int, max_freq: float = MAX_FRE
 
 # Guidance weights w live in a range of a few units (0..8 in common practice), not in [0, 1] like t: their
 # Fourier features span 1 to W_MAX_FREQ rad per unit w (the lowest frequency wraps only beyond w = 2 pi).
-W_MAX_FREQ = 100.0
+W_MAX_FREQ = 8.0
 
 
 class CondEmbedding(nn.Module):
