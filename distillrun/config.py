@@ -136,7 +136,7 @@ class RunConfig:
     data: DataConfig = MISSING
     net: NetConfig = MISSING
     teacher: TeacherConfig = MISSING
-    method: Any = MISSING  # ProgressiveConfig or ConsistencyConfig, chosen by the method group
+    method: Any = MISSING  # ProgressiveConfig, ConsistencyConfig or GuidedConfig, chosen by the method group
     eval: EvalConfig = MISSING
     stop: StopConfig = MISSING
     tracking: TrackingConfig = MISSING
@@ -152,13 +152,15 @@ class RunConfig:
 def register_configs() -> None:
     from omegaconf import OmegaConf
 
+    from .methods.guided import GuidedConfig
+
     # hydra.run.dir follows run_dir when it is set, so Hydra's own files land in the run folder.
     OmegaConf.register_new_resolver("first_set", lambda a, b: b if a in (None, "", "None", "null") else a, replace=True)
     cs = ConfigStore.instance()
     cs.store(name="run_schema", node=RunConfig)
     for group, node in [("data", DataConfig), ("net", NetConfig), ("teacher", TeacherConfig), ("eval", EvalConfig),
                         ("stop", StopConfig), ("tracking", TrackingConfig), ("compute", ComputeConfig),
-                        ("method", ProgressiveConfig), ("method", ConsistencyConfig)]:
+                        ("method", ProgressiveConfig), ("method", ConsistencyConfig), ("method", GuidedConfig)]:
         cs.store(group=group, name=f"{node.__name__.removesuffix('Config').lower()}_schema", node=node)
     for path in recipe_files():  # top-level recipes/ (installed as distillrun.recipes) is the `recipe` group
         cs.store(group="recipe", name=path.stem, node=OmegaConf.load(path), package="_global_")
@@ -256,7 +258,11 @@ def validate(cfg: DictConfig) -> None:
 
 def _validate_method(cfg: DictConfig) -> None:
     m = cfg.method
-    _one_of("method.name", m.name, ("progressive", "consistency"))
+    _one_of("method.name", m.name, ("progressive", "consistency", "guided"))
+    if m.name == "guided":
+        from .methods.guided import validate_config
+        validate_config(cfg)
+        return
     if m.name == "progressive":
         _one_of("method.loss", m.loss, ("snr_trunc", "v"))
         ratio = cfg.teacher.steps / m.target_steps if m.target_steps > 0 else 0

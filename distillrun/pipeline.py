@@ -65,7 +65,9 @@ def preflight(cfg: DictConfig):
         raise DataError(f"net.kind={cfg.net.kind} does not fit data of shape {data.shape}; "
                         f"use net={'unet' if data.is_image else 'mlp'}")
     if cfg.net.class_cond and data.labels is None:
-        raise DataError(f"net.class_cond=true but data.name={cfg.data.name} has no labels")
+        why = "guided distillation (method=guided) needs labelled data" if cfg.method.name == "guided" else \
+            "give labelled data or net.class_cond=false"
+        raise DataError(f"net.class_cond=true but data.name={cfg.data.name} has no labels; {why}")
     with torch.random.fork_rng(devices=[]):  # user code and network init must not shift the run's seed
         if cfg.teacher.source == "import":
             import_teacher(cfg.teacher.factory, cfg.teacher.factory_kwargs, cfg.teacher.weights, data.shape,
@@ -140,6 +142,9 @@ def evaluate_stage(cfg, bench, spec: StageSpec, method, student, teacher: Teache
     """Quality, baseline and divergence of one stage's student; returns (metrics, student samples)."""
     t0 = time.perf_counter()
     x = evaluate.draw(method.sampler(cfg, student, spec.steps), bench)
+    if method.evaluate is not None:  # the method scores its own students (guided: at every w of a grid)
+        return method.evaluate(cfg, bench, spec.steps, student, teacher.denoiser, teacher.num_classes)[0], x, \
+            time.perf_counter() - t0
     out = evaluate.prefixed("quality", evaluate.quality(bench, x))
     full = bench.cache[f"teacher@{cfg.teacher.steps}"]
     out.update(evaluate.divergence(bench, x, full, "teacher"))
@@ -163,6 +168,8 @@ def attach_verdict(cfg, record: dict, reference: dict) -> dict:
     """Judge a stage with the current stop rule (re-judged on resume, so a looser tolerance continues)."""
     if record["failed"]:
         v = stopping.Verdict(stopping.FAILED, math.nan, math.nan, math.nan, f"training failed: {record['failed']}")
+    elif method_for(cfg.method.name).judge is not None:
+        v = method_for(cfg.method.name).judge(cfg, record["metrics"])
     else:
         quality = {k.split("/", 1)[1]: val for k, val in record["metrics"].items() if k.startswith("quality/")}
         v = stopping.judge(quality, reference["teacher"], cfg.stop.metric, cfg.stop.tolerance, cfg.stop.mode, cfg.stop.z)
@@ -209,7 +216,7 @@ def _follow(cfg: DictConfig, data, stages: list[StageSpec], run_dir: Path) -> No
         if not distributed.share_flag(None):
             break
         previous = student
-        if cfg.method.name == "progressive":
+        if method.chains:
             stage_teacher = student
     return None
 
@@ -236,11 +243,14 @@ def _run(cfg: DictConfig, recorder, recipe, data, stages: list[StageSpec], run_d
         if not distributed.share_flag(record["verdict"] == stopping.WITHIN):  # tells the other ranks too
             break
         previous, previous_samples = student, x
-        if cfg.method.name == "progressive":
+        if method.chains:
             stage_teacher = student
     summary = summarize(cfg, stages, records, reference, run_dir)
     if any(r["metrics"] for r in records):  # no point to draw when stage 1 failed (the log axis needs one)
         report.write_plots(summary, run_dir)
+        if cfg.method.name == "guided":
+            from .methods.guided import fidelity_diversity_plot
+            fidelity_diversity_plot(summary, run_dir / "guided_fidelity_diversity.png")
     recorder.finish(summary, run_dir)
     return summary
 

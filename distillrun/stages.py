@@ -12,7 +12,7 @@ from typing import Callable
 import torch
 
 from .denoiser import NetDenoiser
-from .methods import consistency, progressive
+from .methods import consistency, guided, progressive
 from .samplers import sample, uniform_grid
 from .training import LoopSpec, train_loop
 
@@ -93,6 +93,28 @@ def _consistency_sampler(cfg, student, steps: int) -> Callable:
     return draw
 
 
+def _guided_plan(cfg) -> list[StageSpec]:
+    plan = guided.stage_plan(cfg.teacher.steps, cfg.method.target_steps)
+    return [StageSpec(i + 1, n, tn, cfg.method.fit_iterations if i == 0 else cfg.method.iterations)
+            for i, (n, tn) in enumerate(plan)]
+
+
+def _guided_student(cfg, previous, data) -> torch.nn.Module:
+    """Stage one: the teacher's network plus a w-embedding with no effect yet; later stages: a copy of the previous."""
+    return fast_layout(guided.w_student(previous), in_place=True)
+
+
+def _guided_train(cfg, spec: StageSpec, teacher, student, data, generator, state_path, quiet, device):
+    return guided.train_stage(cfg, spec.index, spec.steps, fast_layout(teacher), student, data, generator, state_path,
+                              quiet, device)
+
+
+def _guided_sampler(cfg, student, steps: int) -> Callable:
+    """At the judged w (method.judge_w, else the largest w of the grid); `draw` picks any w in the trained range."""
+    w = cfg.method.judge_w if cfg.method.judge_w is not None else max(cfg.method.w_grid)
+    return guided.student_sampler(student, steps, float(w), cfg.method.sampler, cfg.eval.seed)
+
+
 def _device(module) -> torch.device:
     return next(module.parameters()).device
 
@@ -103,11 +125,17 @@ class Method:
     make_student: Callable
     train: Callable
     sampler: Callable
+    evaluate: Callable | None = None  # (cfg, bench, steps, student, teacher denoiser, classes) -> (metrics, _)
+    judge: Callable | None = None  # (cfg, metrics) -> stopping.Verdict; None: the generic stop rule on quality/*
+    chains: bool = False  # each stage's student is the next stage's teacher
 
 
 METHODS = {
-    "progressive": Method(_progressive_plan, _progressive_student, _progressive_train, _progressive_sampler),
+    "progressive": Method(_progressive_plan, _progressive_student, _progressive_train, _progressive_sampler,
+                          chains=True),
     "consistency": Method(_consistency_plan, _consistency_student, _consistency_train, _consistency_sampler),
+    "guided": Method(_guided_plan, _guided_student, _guided_train, _guided_sampler,
+                     evaluate=guided.evaluate_stage, judge=guided.verdict_of, chains=True),
 }
 
 

@@ -39,6 +39,9 @@ class Teacher:
         meta = {"net": self.arch, "parameterization": self.init_student.parameterization,
                 "schedule": self.init_student.schedule.kind, "method": cfg.method.name,
                 "stage": spec.index, "steps": spec.steps}
+        if cfg.method.name == "guided":
+            from .methods.guided import meta_for
+            meta.update(meta_for(cfg, self.arch))
         if cfg.method.name == "consistency":
             meta["consistency"] = OmegaConf.to_container(cfg.method, resolve=True)
             meta["consistency"]["sigma_data"] = cfg.method.sigma_data or self.sigma_data

@@ -82,6 +82,12 @@ def validate_config(cfg) -> None:
                           f"must be teacher.steps={cfg.teacher.steps} divided by a power of two >= 2")
     if not 0 <= m.ema_decay < 1:
         raise ConfigError("method.ema_decay", m.ema_decay, "must be in [0, 1)")
+    for key in ("fit_iterations", "iterations", "batch_size"):
+        if not m[key] >= 1:
+            raise ConfigError(f"method.{key}", m[key], "must be >= 1")
+    if cfg.teacher.source == "import":
+        raise ConfigError("teacher.source", "import", "method=guided adds a guidance-weight embedding to the "
+                          "teacher's network, so it needs a distillrun network: teacher.source=train or oracle")
     if not cfg.net.class_cond:
         raise ConfigError("net.class_cond", cfg.net.class_cond, "method=guided distils a class-conditional teacher: "
                           "set net.class_cond=true (and labelled data)")
@@ -312,3 +318,124 @@ def judge_guided(metrics_: dict, w_grid, metric: str, tolerance: float, mode: st
     w_worst = min(verdicts, key=lambda w: (order[verdicts[w].verdict],
                                            verdicts[w].margin if math.isfinite(verdicts[w].margin) else -math.inf))
     return verdicts[w_worst], w_worst
+
+
+# ------------------------------------------------------------------------------------- pipeline glue
+SECOND_BANK_OFFSET = 7919  # the independent noise bank of the guided reference: seed eval.seed + this
+
+
+def train_stage(cfg, index: int, steps: int, stage_teacher, student, data, generator, state_path, quiet, device):
+    """Stage one: guidance fit against Guided(stage_teacher); later stages: progressive halving of the previous
+    w-conditioned student (stage_teacher), w ~ U[w_min, w_max] per example in every batch."""
+    from . import progressive
+    from ..training import LoopSpec, train_loop
+
+    m = cfg.method
+    draw = with_guidance_weights(data.batches(m.batch_size, device), float(m.w_min), float(m.w_max))
+    if index == 1:
+        loss_fn = guidance_fit_loss(Guided(stage_teacher, data.num_classes))
+        loop = LoopSpec(iterations=m.fit_iterations, lr=m.fit_lr, decay="linear", grad_clip=m.grad_clip,
+                        ema_decay=m.ema_decay)
+        desc = f"stage 1 (guidance fit, {steps} steps)"
+    else:
+        loss_fn = progressive.progressive_loss(stage_teacher, steps, m.loss)
+        loop = LoopSpec(iterations=m.iterations, lr=m.lr, decay="linear", grad_clip=m.grad_clip, ema_decay=m.ema_decay)
+        desc = f"stage {index} ({steps} steps)"
+    return train_loop(student, loss_fn, draw, loop, generator=generator, state_path=state_path, desc=desc, quiet=quiet)
+
+
+def evaluate_stage(cfg, bench, steps: int, student, teacher_denoiser, num_classes: int) -> tuple[dict, float]:
+    """Per-w metrics of a stage (see evaluate_guided) plus the judged w's under the generic names quality/<m>,
+    baseline/<m>, divergence/teacher_* (so tables and plots across methods line up), and the judged w itself."""
+    m = cfg.method
+    second = torch.randn(bench.noise.shape, generator=torch.Generator().manual_seed(cfg.eval.seed + SECOND_BANK_OFFSET))
+    grid = [float(w) for w in m.w_grid]
+    ref = guided_reference(bench, teacher_denoiser, num_classes, cfg.teacher.steps, grid, cfg.teacher.sampler, second)
+    nfe = student_nfe(steps, m.sampler)
+    out = evaluate_guided(bench, lambda w: student_sampler(student, steps, w, m.sampler, cfg.eval.seed),
+                          teacher_denoiser, num_classes, nfe, cfg.teacher.steps, grid, ref, cfg.eval.baseline)
+    verdict, w = judge_guided(out, grid, cfg.stop.metric, cfg.stop.tolerance, cfg.stop.mode, cfg.stop.z,
+                              None if m.judge_w is None else float(m.judge_w))
+    k = f"guided/{w_key(w)}"
+    for part, prefix in (("student", "quality"), ("baseline", "baseline")):
+        for name in ("sw2", "sw2_se", "mmd2", "mmd2_se", "fd", "fd_se"):
+            if f"{k}/{part}/{name}" in out:
+                out[f"{prefix}/{name}"] = out[f"{k}/{part}/{name}"]
+    for name in ("rms", "median", "p90", "switch"):
+        if f"{k}/student/teacher_{name}" in out:
+            out[f"divergence/teacher_{name}"] = out[f"{k}/student/teacher_{name}"]
+    out["guided/judged_w"] = w
+    return out, w
+
+
+def verdict_of(cfg, metrics_: dict) -> stopping.Verdict:
+    """The stop rule over the w grid, from a stage's recorded metrics (re-judged on resume)."""
+    grid = [float(w) for w in cfg.method.w_grid]
+    return judge_guided(metrics_, grid, cfg.stop.metric, cfg.stop.tolerance, cfg.stop.mode, cfg.stop.z,
+                        None if cfg.method.judge_w is None else float(cfg.method.judge_w))[0]
+
+
+def meta_for(cfg, arch: dict) -> dict:
+    """What a saved guided student needs beyond the teacher's: its network has the w-embedding, and the w range
+    it was trained on (draw refuses weights outside it)."""
+    kwargs = {**arch.get("kwargs", {}), "guidance": True}
+    return {"net": {**arch, "kwargs": kwargs},
+            "guidance": {"w_min": float(cfg.method.w_min), "w_max": float(cfg.method.w_max),
+                         "w_grid": [float(w) for w in cfg.method.w_grid], "sampler": cfg.method.sampler}}
+
+
+def per_w_table(summary: dict) -> str:
+    """The terminal table of a guided run: every stage at every w of the grid, with NFE."""
+    rows = []
+    metric = summary["stop_metric"]
+    head = (f"{'stage':>5} {'w':>4} {'NFE':>4}  {'student ' + metric:>14} {'teacher ' + metric:>14}  "
+            f"{'rms to teacher':>14}  {'baseline NFE':>12} {'baseline ' + metric:>15} {'baseline rms':>12}  "
+            f"{'fidelity':>8} {'diversity':>9} {'teacher div':>11}")
+    rows.append(head)
+    rows.append("-" * len(head))
+    for r in summary["stages"]:
+        m = r["metrics"]
+        for key in sorted({k.split("/")[1] for k in m if k.startswith("guided/w")}, key=lambda s: float(s[1:])):
+            p = f"guided/{key}"
+            g = lambda name: m.get(f"{p}/{name}", math.nan)  # noqa: E731
+            rows.append(f"{r['index']:>5} {key[1:]:>4} {g('student/nfe'):>4.0f}  {g(f'student/{metric}'):>14.4g} "
+                        f"{g(f'teacher/{metric}'):>14.4g}  {g('student/teacher_rms'):>14.4g}  "
+                        f"{g('baseline/nfe'):>12.0f} {g(f'baseline/{metric}'):>15.4g} {g('baseline/teacher_rms'):>12.4g}  "
+                        f"{g('student/fidelity'):>8.4f} {g('student/diversity'):>9.4f} {g('teacher/diversity'):>11.4f}")
+    return "\n".join(rows)
+
+
+def fidelity_diversity_plot(summary: dict, path) -> None:
+    """Fidelity (x) against diversity (y) over the w grid, for the guided teacher at full steps and the chosen
+    student (or the last stage when none is chosen), each point labelled with its w and NFE."""
+    import matplotlib
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    from .. import checkpoint
+
+    if not summary["stages"]:
+        return
+    chosen = summary.get("chosen")
+    row = next((r for r in summary["stages"] if chosen and r["index"] == chosen["index"]), summary["stages"][-1])
+    m = row["metrics"]
+    keys = sorted({k.split("/")[1] for k in m if k.startswith("guided/w")}, key=lambda s: float(s[1:]))
+    fig, ax = plt.subplots(figsize=(5.5, 4.2))
+    for who, marker in (("teacher", "s"), ("student", "o")):
+        xs = [m.get(f"guided/{k}/{who}/fidelity", math.nan) for k in keys]
+        ys = [m.get(f"guided/{k}/{who}/diversity", math.nan) for k in keys]
+        nfe = m.get(f"guided/{keys[0]}/{who}/nfe", math.nan) if keys else math.nan
+        name = "guided teacher" if who == "teacher" else f"student (stage {row['index']})"
+        ax.plot(xs, ys, marker=marker, label=f"{name}, {nfe:.0f} NFE")
+        for k, x, y in zip(keys, xs, ys):
+            ax.annotate(k, (x, y), textcoords="offset points", xytext=(4, 4), fontsize=8)
+    ax.set_xlabel("label fidelity: mean p(intended label | sample)")
+    ax.set_ylabel("diversity: spread within a label")
+    ax.set_title("guidance: fidelity vs diversity over w")
+    ax.legend(fontsize=8)
+    fig.tight_layout()
+    import io
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=110)
+    plt.close(fig)
+    checkpoint.atomic_write_bytes(path, buf.getvalue())
