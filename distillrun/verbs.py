@@ -1,7 +1,7 @@
 """The verbs beside the run command. `main(verb, argv)` parses, runs, and turns bad input into one line, exit 2.
 
   distillrun recipes [NAME]                                  every recipe: purpose, CPU time, command; NAME: its YAML
-  distillrun draw RUN_DIR [--stage N] [--count N] [--seed S] [--out PATH]
+  distillrun draw RUN_DIR [--stage N] [--count N] [--seed S] [--out PATH] [--label C] [--w W]
   distillrun compare RUN_DIR [RUN_DIR ...] [--metric M] [--out DIR]
 
 `draw` with --seed S and --count N feeds a stage the evaluation noise bank of eval.seed=S, eval.samples=N,
@@ -165,9 +165,11 @@ def rebuild_student(folder: Path, data_fn) -> tuple[object, dict]:
 
 
 # --------------------------------------------------------------------------------------------------- draw
-def draw_samples(model, meta: dict, cfg, count: int, seed: int, data_fn):
+def draw_samples(model, meta: dict, cfg, count: int, seed: int, data_fn, label: int | None = None,
+                 w: float | None = None):
     """The stage's sampler on the noise bank of eval.seed=seed, eval.samples=count (evaluate.make_bench's draw
-    order: noise first, then class labels picked from the data's labels)."""
+    order: noise first, then class labels picked from the data's labels). `label` fixes every sample's class;
+    `w` is the guidance weight of a guided student (default: the w its run judged)."""
     import torch
     from omegaconf import OmegaConf
 
@@ -179,7 +181,16 @@ def draw_samples(model, meta: dict, cfg, count: int, seed: int, data_fn):
     if meta["net"]["num_classes"]:
         labels = data_fn().labels
         cond = labels[torch.randint(0, len(labels), (count,), generator=g)]
+        if label is not None:
+            cond = torch.full_like(cond, label)
     run_cfg = OmegaConf.merge(cfg, {"eval": {"seed": seed}})
+    if meta["method"] == "guided":
+        from .methods import guided
+
+        torch.set_num_threads(cfg.compute.threads)
+        w = w if w is not None else (cfg.method.judge_w if cfg.method.judge_w is not None else max(cfg.method.w_grid))
+        sampler = guided.student_sampler(model, meta["steps"], float(w), meta["guidance"]["sampler"], seed)
+        return evaluate.draw(sampler, SimpleNamespace(noise=noise, cond=cond))
     if meta["method"] == "consistency":
         run_cfg.method.sigma_data = model.sigma_data  # resolved: the config may say null (= the data's std)
     torch.set_num_threads(cfg.compute.threads)
@@ -187,8 +198,25 @@ def draw_samples(model, meta: dict, cfg, count: int, seed: int, data_fn):
     return evaluate.draw(sampler, SimpleNamespace(noise=noise, cond=cond))
 
 
+def check_label_and_w(meta: dict, label: int | None, w: float | None) -> None:
+    """--label needs a class-conditional student and one of its classes; --w a guided student and a weight inside
+    the range it was trained on."""
+    if w is not None and meta["method"] != "guided":
+        raise InputError(f"--w {w:g}: only a guided student (method=guided) takes a guidance weight; this one is "
+                         f"{meta['method']}")
+    if label is not None and not meta["net"]["num_classes"]:
+        raise InputError(f"--label {label}: this student is unconditional (no labels)")
+    if label is not None or w is not None:
+        from .methods.guided import check_request
+        try:
+            check_request(meta, label, w)
+        except ValueError as e:
+            raise InputError(str(e)) from None
+
+
 def draw_target(args, run_dir: Path, index: int, seed: int, count: int) -> Path:
-    name = f"stage-{index:02d}_seed-{seed}_n-{count}.npy"
+    extra = (f"_label-{args.label}" if args.label is not None else "") + (f"_w-{args.w:g}" if args.w is not None else "")
+    name = f"stage-{index:02d}_seed-{seed}_n-{count}{extra}.npy"
     out = args.out if args.out is not None else run_dir / "drawn" / name
     if out.is_dir():
         return out / name
@@ -212,8 +240,9 @@ def cmd_draw(args) -> int:
     data = {}
     data_fn = lambda: data.setdefault("d", pipeline.load_data(cfg))  # noqa: E731  (loaded only when needed)
     model, meta = rebuild_student(folder, data_fn)
+    check_label_and_w(meta, args.label, args.w)
     out = draw_target(args, args.run_dir, meta["stage"], seed, count)
-    x = draw_samples(model, meta, cfg, count, seed, data_fn)
+    x = draw_samples(model, meta, cfg, count, seed, data_fn, args.label, args.w)
     backdrop = torch.empty(0, *x.shape[1:])  # the data behind a 2D scatter, when it can still be loaded
     if x.dim() == 2:
         try:
@@ -293,6 +322,11 @@ def _parser(verb: str) -> argparse.ArgumentParser:
                        "default count this repeats the samples the stage was scored on)")
         p.add_argument("--out", type=Path, metavar="PATH", help="a .npy file or an existing folder (default: "
                        "RUN_DIR/drawn/stage-NN_seed-S_n-N.npy); the picture goes beside it as .png")
+        p.add_argument("--label", type=int, metavar="C", help="class-conditional students: every sample of class C "
+                       "(default: classes drawn like the evaluation's)")
+        p.add_argument("--w", type=float, metavar="W", help="guided students: the guidance weight, x_w = (1 + w) "
+                       "x(z, c) - w x(z, null), w = 0 the conditional model (scale convention: s = 1 + w); inside the "
+                       "range the student was trained on (default: the w its run judged)")
     else:
         p.add_argument("run_dirs", type=Path, nargs="+", metavar="RUN_DIR", help="one or more finished run folders")
         p.add_argument("--metric", metavar="M", help="quality metric (default: the first run's stop.metric)")

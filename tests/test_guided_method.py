@@ -220,3 +220,78 @@ def test_draw_request_checks_label_and_w_range():
         G.check_request(meta, 0, 4.5)
     with pytest.raises(ValueError, match="--w -1"):
         G.check_request(meta, 0, -1.0)
+
+
+# ------------------------------------------------------------------------------------ through the CLI pipeline
+GUIDED_TINY = ["teacher.iterations=40", "method.fit_iterations=20", "method.iterations=10", "eval.samples=128",
+               "eval.bootstrap=5", "eval.projections=16", "teacher.steps=8", "method.target_steps=4",
+               "compute.threads=1", "tracking=off", "quiet=true"]
+
+
+def _compose(*overrides):
+    from hydra import compose, initialize_config_module
+
+    from distillrun.config import register_configs
+    register_configs()
+    with initialize_config_module("distillrun.configs", version_base="1.3"):
+        return compose("run", overrides=["recipe=archipelago_guided", *overrides])
+
+
+def test_guided_recipe_runs_scores_every_w_and_draws(tmp_path, capsys):
+    import json
+
+    from distillrun import cli, verbs
+    run = tmp_path / "run"
+    cfg = _compose(*GUIDED_TINY, "stop.tolerance=1000", f"run_dir={run}")
+    assert cli.run_job(cfg) == 0
+    summary = json.loads((run / "summary.json").read_text())
+    assert [(r["steps"], r["teacher_steps"]) for r in summary["stages"]] == [(8, 8), (4, 8)]
+    out = capsys.readouterr().out
+    assert "NFE" in out and "baseline NFE" in out
+    for r in summary["stages"]:
+        m = r["metrics"]
+        for w in ("w0", "w1", "w2", "w4"):
+            for name in ("student/sw2", "student/sw2_se", "student/teacher_rms", "student/fidelity",
+                         "student/diversity", "teacher/sw2", "baseline/sw2", "student/label5/fidelity"):
+                assert math.isfinite(m[f"guided/{w}/{name}"]), (w, name)
+            assert m[f"guided/{w}/student/nfe"] == r["steps"]  # 1 evaluation per step
+            assert m[f"guided/{w}/teacher/nfe"] == 16  # 8 steps x 2 evaluations
+            assert m[f"guided/{w}/baseline/nfe"] == r["steps"]  # the guided teacher at half the steps
+        assert m["guided/judged_w"] in (0.0, 1.0, 2.0, 4.0)
+        assert m["quality/sw2"] == m[f"guided/{G.w_key(m['guided/judged_w'])}/student/sw2"]
+    meta = json.loads((run / "stage-02" / "model.json").read_text())
+    assert meta["guidance"]["w_min"] == 0.0 and meta["guidance"]["w_max"] == 4.0
+    assert (run / "guided_fidelity_diversity.png").stat().st_size > 1000
+    assert verbs.main("draw", [str(run), "--label", "2", "--w", "1.5", "--count", "32"]) == 0
+    x = __import__("numpy").load(run / "drawn" / "stage-02_seed-1234_n-32_label-2_w-1.5.npy")
+    assert x.shape == (32, 2)
+    assert verbs.main("draw", [str(run), "--w", "4.5"]) == 2
+    assert verbs.main("draw", [str(run), "--label", "6"]) == 2
+    assert "outside the guidance weights" in capsys.readouterr().err
+
+
+@pytest.mark.parametrize("overrides,says", [
+    (["method.w_min=2", "method.w_max=2"], "method.w_max=2.0: must be above method.w_min=2.0"),
+    (["method.w_min=3", "method.w_max=1"], "method.w_max=1.0: must be above method.w_min=3.0"),
+    (["method.w_grid=[0,5]"], "method.w_grid=[0.0, 5.0]: must be distinct weights inside"),
+    (["teacher.label_dropout=1.0"], "teacher.label_dropout=1.0: must be in [0, 1)"),
+    (["teacher.label_dropout=-0.1"], "teacher.label_dropout=-0.1: must be in [0, 1)"),
+    (["teacher=train", "teacher.label_dropout=0"], "teacher.label_dropout=0.0: method=guided needs the unconditional"),
+    (["net.class_cond=false"], "net.class_cond=False: method=guided distils a class-conditional teacher"),
+    (["stop=absolute", "stop.metric=nll_gap"], "stop.metric='nll_gap': method=guided scores students against"),
+    (["method.judge_w=3"], "method.judge_w=3.0: must be null (the worst w) or one of method.w_grid"),
+    (["data=spiral", "teacher=train"], "data.name=spiral has no labels; guided distillation (method=guided) needs "
+                                        "labelled data"),
+])
+def test_bad_guided_input_is_refused_in_one_line(tmp_path, overrides, says):
+    import io
+    from contextlib import redirect_stderr
+
+    from distillrun import cli
+    cfg = _compose(*GUIDED_TINY, f"run_dir={tmp_path / 'run'}", *overrides)
+    err = io.StringIO()
+    with redirect_stderr(err), pytest.raises(SystemExit) as exit_:
+        cli.run_job(cfg)
+    lines = err.getvalue().strip().splitlines()
+    assert exit_.value.code == 2 and len(lines) == 1 and says in lines[0], lines
+    assert not (tmp_path / "run").exists()
