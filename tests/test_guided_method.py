@@ -148,7 +148,7 @@ def test_stop_rule_judges_worst_or_chosen_w():
     assert (v.verdict, w) == (stopping.WITHIN, 4.0)  # within everywhere: the smallest margin (1.25 - 1.2) is at w = 4
 
 
-def fit_stage_one(iterations: int = 800, fit_iterations: int = 800, w_max: float = 4.0):
+def fit_stage_one(iterations: int = 800, fit_iterations: int = 800, w_max: float = 4.0, lr: float = 1e-3):
     """Init net fitted to the exact labelled oracle (dropout 0.15), then stage one at w ~ U[0, w_max]; returns
     per-w RMS x0 error against the exact guided teacher for the init net (w-agnostic) and the stage-one student."""
     sch = Schedule("cosine")
@@ -163,7 +163,7 @@ def fit_stage_one(iterations: int = 800, fit_iterations: int = 800, w_max: float
     student.load_state_dict(init.state_dict(), strict=False)
     student = train_loop(student, G.guidance_fit_loss(Guided(oracle, K)),
                          G.with_guidance_weights(data.batches(512, "cpu"), 0.0, w_max),
-                         LoopSpec(iterations, 1e-3, warmup=50, decay="linear", save_every=10**9),
+                         LoopSpec(iterations, lr, warmup=50, decay="linear", save_every=10**9),
                          generator=torch.Generator().manual_seed(2), quiet=True).model
     out = {}
     g = torch.Generator().manual_seed(5)
