@@ -296,6 +296,9 @@ def cmd_compare(args) -> int:
     report.quality_vs_steps(legends, metric, paths[0])
     report.divergence_vs_steps(legends, paths[1])
     report.samples_side_by_side([(label, d) for (label, _), d in zip(runs, args.run_dirs)], summaries, paths[2])
+    from .methods.guided import per_w_curves
+    if per_w_curves(runs, metric, out / "compare_guided_per_w.png"):  # guided runs: metric vs NFE at each w
+        paths.append(out / "compare_guided_per_w.png")
     print("plots: " + ", ".join(str(p) for p in paths))
     return 0
 

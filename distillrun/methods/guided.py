@@ -439,3 +439,46 @@ def fidelity_diversity_plot(summary: dict, path) -> None:
     fig.savefig(buf, format="png", dpi=110)
     plt.close(fig)
     checkpoint.atomic_write_bytes(path, buf.getvalue())
+
+
+def per_w_curves(runs: list[tuple[str, dict]], metric: str, path) -> bool:
+    """For `compare`: one panel per guidance weight, `metric` against NFE for every guided run's stages (student)
+    and their same-NFE guided-teacher baselines, with the teacher at full steps as a marker. False when no run
+    is guided (nothing drawn)."""
+    import io
+
+    import matplotlib
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    from .. import checkpoint
+
+    guided_runs = [(label, s) for label, s in runs if s.get("method") == "guided" and s["stages"]]
+    if not guided_runs:
+        return False
+    keys = sorted({k.split("/")[1] for _, s in guided_runs for r in s["stages"] for k in r["metrics"]
+                   if k.startswith("guided/w")}, key=lambda s: float(s[1:]))
+    fig, axes = plt.subplots(1, len(keys), figsize=(3.6 * len(keys), 3.4), squeeze=False)
+    for ax, key in zip(axes[0], keys):
+        for label, s in guided_runs:
+            rows = [r for r in s["stages"] if f"guided/{key}/student/{metric}" in r["metrics"]]
+            get = lambda r, who, name: r["metrics"].get(f"guided/{key}/{who}/{name}", math.nan)  # noqa: E731
+            line = ax.plot([get(r, "student", "nfe") for r in rows], [get(r, "student", metric) for r in rows],
+                           marker="o", label=f"{label} student")[0]
+            ax.plot([get(r, "baseline", "nfe") for r in rows], [get(r, "baseline", metric) for r in rows],
+                    marker="s", linestyle="--", color=line.get_color(), alpha=0.6, label=f"{label} guided DDIM")
+            if rows:
+                ax.plot([get(rows[0], "teacher", "nfe")], [get(rows[0], "teacher", metric)], marker="*",
+                        markersize=11, color=line.get_color(), linestyle="", label=f"{label} teacher, full steps")
+        ax.set_xscale("log", base=2)
+        ax.set_yscale("log")
+        ax.set_xlabel("network evaluations per sample (NFE)")
+        ax.set_title(f"w = {key[1:]}")
+    axes[0][0].set_ylabel(f"{metric} to the guided teacher's samples")
+    axes[0][-1].legend(fontsize=7)
+    fig.tight_layout()
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=100)
+    plt.close(fig)
+    checkpoint.atomic_write_bytes(path, buf.getvalue())
+    return True
