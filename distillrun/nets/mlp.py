@@ -28,9 +28,12 @@ def fourier_features(t: torch.Tensor, n_features: int, max_freq: float = MAX_FRE
     return torch.cat([torch.sin(angles), torch.cos(angles)], dim=1)
 
 
-# Guidance weights w live in a range of a few units (0..8 in common practice), not in [0, 1] like t: their
-# Fourier features span 1 to W_MAX_FREQ rad per unit w (the lowest frequency wraps only beyond w = 2 pi).
+# Guidance weights w live in a range of a few units (0..8 in common practice), not in [0, 1] like t: the Fourier
+# features of W_SCALE * w span 1 to W_MAX_FREQ rad, i.e. 0.25 to 2 rad per unit w, smooth over the range (the
+# guided target is linear in w). Measured on the archipelago stage one (2500 iterations): RMS x0 error at w = 0 / 4
+# of 0.080 / 0.091 against 0.099 / 0.105 with 1..8 rad per unit w and 0.14 / 0.18 with 1..100 (800 iterations).
 W_MAX_FREQ = 8.0
+W_SCALE = 0.25
 
 
 class CondEmbedding(nn.Module):
@@ -63,7 +66,7 @@ class CondEmbedding(nn.Module):
         emb = self.time_mlp(fourier_features(t[:1] if shared else t, self.time_features))
         if self.guidance_mlp is not None:
             w = torch.as_tensor(w, dtype=emb.dtype, device=emb.device).reshape(-1)
-            emb = emb + self.guidance_mlp(fourier_features(w, self.time_features, W_MAX_FREQ))
+            emb = emb + self.guidance_mlp(fourier_features(w * W_SCALE, self.time_features, W_MAX_FREQ))
         if self.label_emb is None:
             return emb
         if cond is None:
