@@ -4,7 +4,7 @@ interleaved in one process.
 Variants (the digits recipes' U-Net, batch and settings; fresh weights, which do not change the speed):
   contiguous       as built (NCHW)
   student          the stage's student in channels-last, teacher as built
-  both             student and teacher in channels-last (what stages.py does for a stage's loss and its samplers)
+  both             student and teacher in channels-last (what the methods do for a stage's loss and its samplers)
 Timed: a progressive and a consistency stage loop (`train_loop` with the method's loss), and a 16-step DDIM draw
 of 1000 samples (the digits recipes' eval.samples). Also reported: the largest difference of one forward pass.
 
@@ -26,9 +26,14 @@ sys.path.insert(0, str(Path(__file__).parent))
 import overhead  # noqa: E402  (same scenario builder)
 
 from distillrun import evaluate  # noqa: E402
+from distillrun.methods.consistency import consistency_loss  # noqa: E402
+from distillrun.methods.progressive import progressive_loss  # noqa: E402
 from distillrun.samplers import sample, uniform_grid  # noqa: E402
 
 CL = torch.channels_last
+# Stage 1's loss of each recipe, on the teacher exactly as given (the method's own `loss` would convert it).
+LOSSES = {"digits_progressive": lambda t, cfg, data: progressive_loss(t, cfg.teacher.steps // 2, cfg.method.loss),
+          "digits_consistency": lambda t, cfg, data: consistency_loss(t, cfg.method, data.x[0].numel())}
 
 
 def variants(scenario):
@@ -37,13 +42,7 @@ def variants(scenario):
     for name, s_cl, t_cl in (("contiguous", False, False), ("student", True, False), ("both", True, True)):
         t = copy.deepcopy(teacher).to(memory_format=CL if t_cl else torch.contiguous_format)
         s = copy.deepcopy(student).to(memory_format=CL if s_cl else torch.contiguous_format)
-        if cfg.method.name == "progressive":
-            from distillrun.methods.progressive import progressive_loss
-            loss = progressive_loss(t, cfg.teacher.steps // 2, cfg.method.loss)
-        else:
-            from distillrun.methods.consistency import consistency_loss
-            loss = consistency_loss(t, cfg.method, s.sigma_data, data.x[0].numel())
-        out[name] = (s, t, loss)
+        out[name] = (s, t, LOSSES[scenario[0]](t, cfg, data))
     return cfg, data, spec, batch, out
 
 

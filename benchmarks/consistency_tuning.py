@@ -20,7 +20,7 @@ import time
 import torch
 
 from distillrun import metrics
-from distillrun.config import ConsistencyConfig
+from distillrun.methods.consistency import ConsistencyConfig
 from distillrun.data.mixture import archipelago
 from distillrun.denoiser import NetDenoiser
 from distillrun.methods.consistency import (ConsistencyModel, consistency_loss, consistency_sample, sample_sigmas,
@@ -75,7 +75,7 @@ def distil(student_init, oracle, data, overrides: dict, iterations: int):
     spec = LoopSpec(iterations=cfg.iterations, lr=cfg.lr, ema_decay=cfg.ema_decay, grad_clip=cfg.grad_clip,
                     decay=decay)
     t0 = time.perf_counter()
-    res = train_loop(model, consistency_loss(oracle, cfg, sigma_data, 2), batcher(data, cfg.batch_size), spec,
+    res = train_loop(model, consistency_loss(oracle, cfg, 2), batcher(data, cfg.batch_size), spec,
                      generator=torch.Generator().manual_seed(seed), quiet=True)
     return res.model, cfg, sigma_data, time.perf_counter() - t0, res.failed
 

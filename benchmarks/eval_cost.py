@@ -55,8 +55,11 @@ class Variant:
     def __init__(self, label: str, pkg_name: str, cfg, data, teacher, patch=contextlib.nullcontext):
         self.label, self.patch = label, patch
         self.evaluate = importlib.import_module(f"{pkg_name}.evaluate")
-        self.stages = importlib.import_module(f"{pkg_name}.stages")
         self.pipeline = importlib.import_module(f"{pkg_name}.pipeline")
+        # A package from before the method seam keeps the teacher sampler and the method table in stages.py.
+        self.stages = importlib.import_module(f"{pkg_name}.stages") if not hasattr(self.pipeline, "RunParts") \
+            else None
+        self.teacher_sampler = (self.stages or self.pipeline).teacher_sampler
         self.cfg, self.data, self.teacher = cfg, data, teacher
         self.seconds = {"bench": 0.0, "reference": 0.0}
         self.metrics = {}
@@ -89,7 +92,7 @@ class Variant:
         t0 = time.perf_counter()
         steps = self.cfg.teacher.steps
         samples, _ = e.cached_draw(self.bench, f"teacher@{steps}",
-                                   self.stages.teacher_sampler(self.teacher.denoiser, steps, self.cfg.teacher.sampler))
+                                   self.teacher_sampler(self.teacher.denoiser, steps, self.cfg.teacher.sampler))
         self.metrics["reference/teacher"] = e.quality(self.bench, samples)
         self.metrics["reference/floor"] = e.quality(self.bench, self.bench.floor_set)
         self.seconds["reference"] = time.perf_counter() - t0
@@ -101,9 +104,15 @@ class Variant:
             self._stage(spec, student)
 
     def _stage(self, spec, student):
-        method = self.stages.method_for(self.cfg.method.name)
-        out, x, secs = self.pipeline.evaluate_stage(self.cfg, self.bench, spec, method, student, self.teacher,
-                                                    self.previous)
+        if self.stages is not None:
+            method = self.stages.method_for(self.cfg.method.name)
+            out, x, secs = self.pipeline.evaluate_stage(self.cfg, self.bench, spec, method, student, self.teacher,
+                                                        self.previous)
+        else:
+            methods = importlib.import_module(f"{self.pipeline.__name__.rpartition('.')[0]}.methods")
+            run = self.pipeline.RunParts(self.cfg, methods.method_named(self.cfg.method.name), self.data,
+                                         self.teacher, Path("."), True, self.bench)
+            out, x, secs = self.pipeline.evaluate_stage(run, spec, student, self.previous)
         self.metrics[f"stage-{spec.index:02d}"] = out
         self.seconds[f"stage-{spec.index:02d}"] = secs
         self.previous = x
@@ -131,16 +140,15 @@ def main():
     cfg, summary = verbs.open_run(a.run_dir)
     data = load_dataset(cfg.data)
     from distillrun.teachers import Teacher
-    teacher_net, _ = verbs.rebuild_student(a.run_dir / "teacher", lambda: data)
+    teacher_net, _ = verbs.rebuild_student(a.run_dir / "teacher")
     oracle = None
     if cfg.teacher.source == "oracle":
         from distillrun.nets.oracle import OracleDenoiser
         from distillrun.schedule import Schedule
         oracle = OracleDenoiser(data.mixture, Schedule(cfg.teacher.schedule))
     num_classes = data.num_classes if cfg.net.class_cond else 0
-    teacher = Teacher(oracle or teacher_net, teacher_net, {"num_classes": num_classes}, torch.device("cpu"), [], 0.0,
-                      data.sigma_data)
-    from distillrun.stages import StageSpec
+    teacher = Teacher(oracle or teacher_net, teacher_net, {"num_classes": num_classes}, torch.device("cpu"), [], 0.0)
+    from distillrun.methods import StageSpec
     specs = [StageSpec(**s) for s in json.loads((a.run_dir / "plan.json").read_text())]
     records = {r["index"]: r for r in summary["stages"]}
     specs = [s for s in specs if s.index in records and not records[s.index]["failed"]]
@@ -153,7 +161,7 @@ def main():
     for v in variants:
         v.setup()
     for n, spec in enumerate(specs):
-        student, _ = verbs.rebuild_student(a.run_dir / f"stage-{spec.index:02d}", lambda: data)
+        student, _ = verbs.rebuild_student(a.run_dir / f"stage-{spec.index:02d}")
         for i in (order if n % 2 else order[::-1]):
             variants[i].stage(spec, student)
     base = variants[0]

@@ -36,11 +36,12 @@ import torch
 
 from torch.optim.swa_utils import AveragedModel
 
-from distillrun import checkpoint, stages, training
+from distillrun import checkpoint, training
 from distillrun.data import load_dataset
 from distillrun.denoiser import NetDenoiser
-from distillrun.methods import consistency, progressive
+from distillrun.methods import StageJob, method_named
 from distillrun.methods.teacher import network_for
+from distillrun.nets import fast_layout
 from distillrun.schedule import Schedule
 from distillrun.training import LoopSpec, _state_tensors, make_ema, make_scheduler, train_loop
 
@@ -85,14 +86,12 @@ def build(scenario):
     net, _ = network_for(cfg, data)
     teacher = NetDenoiser(net, cfg.teacher.parameterization, Schedule(cfg.teacher.schedule)).requires_grad_(False)
     m = cfg.method
-    student = stages.method_for(m.name).make_student(cfg, teacher, data)  # as the pipeline makes it (memory format)
-    teacher = stages.fast_layout(teacher)  # as the stage's loss gets it
-    if m.name == "progressive":
-        loss_fn = progressive.progressive_loss(teacher, cfg.teacher.steps // 2, m.loss)
-        net = student.net
-    else:
-        loss_fn = consistency.consistency_loss(teacher, m, student.sigma_data, data.x[0].numel())
-        net = student.denoiser.net
+    method = method_named(m.name)
+    student = method.make_student(cfg, teacher, data)  # as the pipeline makes it (memory format)
+    job = StageJob(method.plan(cfg)[0], teacher, student, data, torch.Generator(), None, torch.device("cpu"))
+    loss_fn = method.loss(cfg, job)  # stage 1's loss, as the pipeline builds it
+    teacher = fast_layout(teacher)  # as the stage's loss gets it
+    net = getattr(student, "denoiser", student).net  # the network inside the student (a consistency model wraps it)
     spec = LoopSpec(iterations=0, lr=m.lr, decay="linear", grad_clip=m.grad_clip, ema_decay=m.ema_decay)
     return cfg, data, teacher, student, net, loss_fn, spec, m.batch_size
 

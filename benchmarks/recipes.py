@@ -120,8 +120,7 @@ def read_run(folder: Path) -> dict:
             "metric": metric, "chosen_steps": chosen and chosen["steps"],
             "quality": q.get(f"quality/{metric}"), "quality_se": q.get(f"quality/{metric}_se"),
             "teacher_q": ref["teacher"].get(metric), "floor_q": ref["floor"].get(metric),
-            "teacher_steps": summary["stages"][0]["teacher_steps"] if summary["method"] == "consistency" else
-            2 * summary["stages"][0]["steps"], "stopped_because": summary["stopped_because"]}
+            "teacher_steps": summary["stages"][0]["teacher_steps"], "stopped_because": summary["stopped_because"]}
 
 
 # ---------------------------------------------------------------------------------------- sampler throughput
@@ -129,25 +128,21 @@ def throughput(folder: Path, count: int, rounds: int, threads: int) -> dict:
     """Samples/s of the chosen student at its steps and of the teacher at its full steps (interleaved rounds)."""
     import torch
 
-    from distillrun import evaluate, stages, verbs
+    from distillrun import evaluate, pipeline, verbs
+    from distillrun.methods import method_named
 
     torch.set_num_threads(threads)
     cfg, summary = verbs.open_run(folder)
     chosen = summary.get("chosen")
     if not chosen:
         return {}
-    data_fn = lambda: None  # noqa: E731  (sigma_data is saved in model.json for every consistency student)
-    student, meta = verbs.rebuild_student(folder / chosen["folder"], data_fn)
+    student, meta = verbs.rebuild_student(folder / chosen["folder"])
     shape, classes = meta["net"]["data_shape"], meta["net"]["num_classes"]
     g = torch.Generator().manual_seed(0)
     bank = evaluate.Bench(torch.randn((count, *shape), generator=g), None, None, None, None, 0.0, 0, 0)
     if classes:
         bank.cond = torch.randint(0, classes, (count,), generator=g)
-    from omegaconf import OmegaConf
-    run_cfg = OmegaConf.merge(cfg, {"eval": {"seed": 0}})
-    if meta["method"] == "consistency":
-        run_cfg.method.sigma_data = student.sigma_data
-    student_fn = stages.method_for(meta["method"]).sampler(run_cfg, student, meta["steps"])
+    student_fn = method_named(meta["method"]).sampler(cfg.method, student, meta["steps"], 0)
     if cfg.teacher.source == "oracle":
         from distillrun.data import load_dataset
         from distillrun.nets.oracle import OracleDenoiser
@@ -160,8 +155,8 @@ def throughput(folder: Path, count: int, rounds: int, threads: int) -> dict:
         net = import_teacher(cfg.teacher.factory, cfg.teacher.factory_kwargs, cfg.teacher.weights, shape, classes)
         teacher = NetDenoiser(net, cfg.teacher.parameterization, Schedule(cfg.teacher.schedule)).requires_grad_(False)
     else:
-        teacher, _ = verbs.rebuild_student(folder / "teacher", data_fn)
-    teacher_fn = stages.teacher_sampler(teacher, cfg.teacher.steps, cfg.teacher.sampler)
+        teacher, _ = verbs.rebuild_student(folder / "teacher")
+    teacher_fn = pipeline.teacher_sampler(teacher, cfg.teacher.steps, cfg.teacher.sampler)
     times = {"teacher": [], "student": []}
     evaluate.draw(student_fn, bank)  # warm-up
     for _ in range(rounds):

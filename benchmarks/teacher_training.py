@@ -13,7 +13,7 @@ from hydra import compose, initialize_config_module
 from distillrun import evaluate
 from distillrun.config import register_configs
 from distillrun.data import load_dataset
-from distillrun.stages import teacher_sampler
+from distillrun.pipeline import teacher_sampler
 from distillrun.teachers import prepare_teacher
 
 SCENARIOS = {"2d": ["recipe=archipelago_progressive"],

@@ -1,6 +1,6 @@
 """torch intra-op threads (compute.threads) for a stage's training loop and for sampling: 1 thread against N,
 interleaved in one process (torch.set_num_threads switched between rounds), wall-clock medians, with the load
-average next to them: on a shared machine extra threads only help when cores are idle (DESIGN.md Sec. 5).
+average next to them: on a shared machine extra threads only help when cores are idle.
 
 Usage (repository root): python benchmarks/threads.py [--recipe archipelago_progressive] [--threads 1,2] [--rounds 5]
 """

@@ -37,7 +37,7 @@ MODEL_FIELDS: dict[str, Any] = {
     "net.data_shape": list,  # what one sample looks like: [d] or [C, S, S]
     "net.num_classes": int,  # 0: unconditional
     "parameterization": str,  # eps | x0 | v, or the method's own output form
-    "schedule": (str, dict),
+    "schedule": str,  # a name of schedule.SCHEDULES
     "stage": int,  # 0: the teacher
     "steps": int,  # sampler steps this network was trained for
     "sha256": str,  # of weights.safetensors, added by save_model

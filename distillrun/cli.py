@@ -178,7 +178,8 @@ def join_ranks(cfg) -> None:
 
 
 def failed_stage_line(cfg, summary: dict) -> str:
-    """What failed, what to change, and what is kept (one line)."""
+    """What failed, what to change, and what is kept (one line). lr and grad_clip are keys of MethodConfig,
+    which every method's config extends."""
     last = summary["stages"][-1]
     m = cfg.method
     kept = f"the stages before it are kept (chosen: {summary['chosen']['folder']})" if summary["chosen"] else \

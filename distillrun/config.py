@@ -10,11 +10,6 @@ from typing import Any, Optional
 from hydra.core.config_store import ConfigStore
 from omegaconf import MISSING, DictConfig
 
-DATASETS_2D = ("archipelago", "spiral", "rings")
-DATASETS_IMAGES = ("digits", "tiles")
-DATASETS_FILES = ("array", "image_folder")
-
-
 class ConfigError(ValueError):
     """A config value that cannot be run; str() is the one line shown to the user."""
 
@@ -37,7 +32,7 @@ class DataConfig:
 @dataclass
 class NetConfig:
     kind: str = "mlp"  # mlp (vectors) | unet (images)
-    width: int = 128  # mlp; 128 x 3 blocks fits the 2D sets within ~2x the exact denoiser's SW2 (measured)
+    width: int = 128  # mlp; 128 x 3 blocks fits the 2D sets (benchmarks/README.md)
     depth: int = 3  # mlp residual blocks
     base: int = 32  # unet channels at full resolution
     mults: list[int] = field(default_factory=lambda: [1, 2])  # unet channel multipliers per level
@@ -51,7 +46,7 @@ class TeacherConfig:
     parameterization: str = "v"  # v | eps | x0
     steps: int = 256  # full step count: what sampling the teacher costs before distillation
     sampler: str = "ddim"  # ddim | ancestral | euler | heun, used for the teacher's reference samples
-    iterations: int = 2000  # 2D default: ~20 s on one CPU thread
+    iterations: int = 2000
     batch_size: int = 512
     lr: float = 2e-3
     warmup: int = 200  # linear LR warm-up, then cosine decay to 0
@@ -64,38 +59,6 @@ class TeacherConfig:
     factory: Optional[str] = None  # import: "package.module:function" returning an nn.Module
     factory_kwargs: dict[str, Any] = field(default_factory=dict)
     weights: Optional[str] = None  # import: safetensors file of that module's state dict
-
-
-@dataclass
-class ProgressiveConfig:
-    name: str = "progressive"
-    target_steps: int = 1  # stop halving here; teacher.steps / target_steps must be a power of two
-    iterations: int = 600  # per stage; 2D: 8 stages reach 1 step in ~80 s on one CPU thread (measured)
-    batch_size: int = 512
-    lr: float = 3e-4  # decays linearly to 0 within each stage (Salimans & Ho 2022)
-    loss: str = "snr_trunc"  # snr_trunc: x-space loss weighted max(SNR, 1) | v: weight SNR + 1
-    ema_decay: float = 0.0  # 0 = no EMA of the student
-    grad_clip: float = 1.0
-
-
-@dataclass
-class ConsistencyConfig:
-    name: str = "consistency"
-    steps: list[int] = field(default_factory=lambda: [4, 2, 1])  # one stage per entry, descending
-    iterations: int = 2000  # per stage
-    batch_size: int = 512
-    lr: float = 1e-3  # tuned: training is budget-limited; 2e-4 gave a 1.6x larger 1-step NLL gap on 2D
-    sigma_min: float = 0.002  # paper value (Song et al. 2023)
-    sigma_max: float = 80.0  # paper value
-    rho: float = 7.0  # paper value (Karras et al. 2022)
-    grid_points: int = 18  # N; paper value for CIFAR-10 distillation
-    ode_solver: str = "heun"  # heun | euler
-    distance: str = "pseudo_huber"  # pseudo_huber | l2
-    huber_c: Optional[float] = None  # None: 0.00054 * sqrt(d) (Song & Dhariwal 2023)
-    ema_decay: float = 0.95  # target network EMA rate; 0 allowed (Song & Dhariwal 2023)
-    weighting: str = "inverse_gap"  # inverse_gap: 1 / (sigma_{n+1} - sigma_n) (Song & Dhariwal 2023) | uniform
-    sigma_data: Optional[float] = None  # None: the data's standard deviation
-    grad_clip: float = 1.0
 
 
 @dataclass
@@ -136,7 +99,7 @@ class RunConfig:
     data: DataConfig = MISSING
     net: NetConfig = MISSING
     teacher: TeacherConfig = MISSING
-    method: Any = MISSING  # ProgressiveConfig, ConsistencyConfig or GuidedConfig, chosen by the method group
+    method: Any = MISSING  # a methods.MethodConfig subclass, chosen by the method group (METHODS)
     eval: EvalConfig = MISSING
     stop: StopConfig = MISSING
     tracking: TrackingConfig = MISSING
@@ -152,15 +115,14 @@ class RunConfig:
 def register_configs() -> None:
     from omegaconf import OmegaConf
 
-    from .methods.guided import GuidedConfig
-
     # hydra.run.dir follows run_dir when it is set, so Hydra's own files land in the run folder.
     OmegaConf.register_new_resolver("first_set", lambda a, b: b if a in (None, "", "None", "null") else a, replace=True)
+    from . import methods  # noqa: F401  (registering a method stores its config in the `method` group)
+
     cs = ConfigStore.instance()
     cs.store(name="run_schema", node=RunConfig)
     for group, node in [("data", DataConfig), ("net", NetConfig), ("teacher", TeacherConfig), ("eval", EvalConfig),
-                        ("stop", StopConfig), ("tracking", TrackingConfig), ("compute", ComputeConfig),
-                        ("method", ProgressiveConfig), ("method", ConsistencyConfig), ("method", GuidedConfig)]:
+                        ("stop", StopConfig), ("tracking", TrackingConfig), ("compute", ComputeConfig)]:
         cs.store(group=group, name=f"{node.__name__.removesuffix('Config').lower()}_schema", node=node)
     for path in recipe_files():  # top-level recipes/ (installed as distillrun.recipes) is the `recipe` group
         cs.store(group="recipe", name=path.stem, node=OmegaConf.load(path), package="_global_")
@@ -174,7 +136,7 @@ def recipe_files() -> list:
                   key=lambda p: p.name)
 
 
-def _one_of(key: str, value, options) -> None:
+def one_of(key: str, value, options) -> None:
     if value not in options:
         raise ConfigError(key, value, f"must be one of {', '.join(map(str, options))}")
 
@@ -188,30 +150,35 @@ def _positive(cfg: DictConfig, keys: list[str]) -> None:
             raise ConfigError(key, value, "must be a finite number > 0")
 
 
-def _power_of_two(n: int) -> bool:
-    return n >= 1 and (n & (n - 1)) == 0
-
-
 def validate(cfg: DictConfig) -> None:
-    """All cross-field checks, before any work. Raises ConfigError naming the full key."""
+    """All cross-field checks, before any work. Raises ConfigError naming the full key. Allowed values come
+    from the registries (datasets, networks, methods, samplers, schedules, parameterizations) and from the
+    metric property table."""
+    from .data import DATASETS
     from .denoiser import PARAMETERIZATIONS
+    from .metric_props import METRIC_PROPS, available, stop_metrics
+    from .methods import METHODS
+    from .nets import NETS
     from .samplers import SAMPLERS
     from .schedule import SCHEDULES
 
-    _one_of("data.name", cfg.data.name, DATASETS_2D + DATASETS_IMAGES + DATASETS_FILES)
-    if cfg.data.name in DATASETS_FILES:
+    one_of("data.name", cfg.data.name, DATASETS)
+    source = DATASETS[cfg.data.name]
+    if source.reads_path:
         if not cfg.data.path:
             raise ConfigError("data.path", cfg.data.path, f"data.name={cfg.data.name} needs a file or folder path")
         if not os.path.exists(cfg.data.path):
             raise ConfigError("data.path", cfg.data.path, "no such file or folder")
-    _one_of("data.image_size", cfg.data.image_size, (8, 16, 32))
-    _one_of("net.kind", cfg.net.kind, ("mlp", "unet"))
-    _one_of("teacher.source", cfg.teacher.source, ("train", "oracle", "import"))
-    _one_of("teacher.schedule", cfg.teacher.schedule, SCHEDULES)
-    _one_of("teacher.parameterization", cfg.teacher.parameterization, PARAMETERIZATIONS)
-    _one_of("teacher.sampler", cfg.teacher.sampler, SAMPLERS)
-    if cfg.teacher.source == "oracle" and cfg.data.name != "archipelago":
-        raise ConfigError("teacher.source", "oracle", "the exact denoiser exists only for data.name=archipelago")
+    one_of("data.image_size", cfg.data.image_size, (8, 16, 32))
+    one_of("net.kind", cfg.net.kind, NETS)
+    one_of("teacher.source", cfg.teacher.source, ("train", "oracle", "import"))
+    one_of("teacher.schedule", cfg.teacher.schedule, SCHEDULES)
+    one_of("teacher.parameterization", cfg.teacher.parameterization, PARAMETERIZATIONS)
+    one_of("teacher.sampler", cfg.teacher.sampler, SAMPLERS)
+    if cfg.teacher.source == "oracle" and not source.known_density:
+        known = [name for name, d in DATASETS.items() if d.known_density]
+        raise ConfigError("teacher.source", "oracle", "the exact denoiser needs data with a known density "
+                          f"(data.name={' or '.join(known)})")
     if cfg.teacher.source == "import":
         for key in ("factory", "weights"):
             if not cfg.teacher[key]:
@@ -224,71 +191,37 @@ def validate(cfg: DictConfig) -> None:
     if not cfg.net.mults or any(m < 1 for m in cfg.net.mults):
         raise ConfigError("net.mults", list(cfg.net.mults), "must be a non-empty list of multipliers >= 1, e.g. [1, 2]")
     _positive(cfg, ["data.n_train", "teacher.steps", "teacher.iterations", "teacher.batch_size", "teacher.lr",
-                    "eval.samples", "eval.projections", "eval.bootstrap", "compute.threads",
-                    "method.iterations", "method.batch_size", "method.lr", "checkpoint_every"])
+                    "eval.samples", "eval.projections", "eval.bootstrap", "compute.threads", "checkpoint_every"])
     if not 0 <= cfg.teacher.ema_decay < 1:
         raise ConfigError("teacher.ema_decay", cfg.teacher.ema_decay, "must be in [0, 1)")
     if not (0 <= cfg.teacher.label_dropout < 1):
         raise ConfigError("teacher.label_dropout", cfg.teacher.label_dropout, "must be in [0, 1) (0.1-0.2 is usual)")
     if cfg.teacher.warmup < 0:
         raise ConfigError("teacher.warmup", cfg.teacher.warmup, "must be >= 0")
-    _validate_method(cfg)
-    _one_of("stop.metric", cfg.stop.metric, ("sw2", "mmd2", "fd", "nll_gap"))
-    images = cfg.data.name in DATASETS_IMAGES or cfg.data.name == "image_folder"
-    if cfg.stop.metric == "fd" and not images:
-        raise ConfigError("stop.metric", "fd", "the Fréchet distance needs image data; use sw2 or mmd2")
-    if cfg.stop.metric == "nll_gap" and cfg.data.name != "archipelago":
-        raise ConfigError("stop.metric", "nll_gap", "needs a known density (data.name=archipelago)")
-    _one_of("stop.mode", cfg.stop.mode, ("relative", "absolute"))
-    if cfg.stop.mode == "relative" and cfg.stop.metric in ("mmd2", "nll_gap"):
-        raise ConfigError("stop.mode", "relative", f"stop.metric={cfg.stop.metric} hovers around 0 and can go "
+    one_of("method.name", cfg.method.name, METHODS)
+    _positive(cfg, ["method.iterations", "method.batch_size", "method.lr"])  # MethodConfig: every method has them
+    if not 0 <= cfg.method.ema_decay < 1:
+        raise ConfigError("method.ema_decay", cfg.method.ema_decay, "must be in [0, 1)")
+    METHODS[cfg.method.name].validate(cfg)
+    metric, props = cfg.stop.metric, METRIC_PROPS.get(cfg.stop.metric)
+    one_of("stop.metric", metric, stop_metrics())
+    if not available(metric, source.images, source.known_density):
+        need = "image data" if props.images_only and not source.images else "data with a known density"
+        usable = [m for m in stop_metrics() if available(m, source.images, source.known_density)]
+        raise ConfigError("stop.metric", metric, f"{props.meaning} needs {need}; for data.name={cfg.data.name} "
+                          f"use one of {', '.join(usable)}")
+    one_of("stop.mode", cfg.stop.mode, ("relative", "absolute"))
+    if cfg.stop.mode == "relative" and props.signed:
+        raise ConfigError("stop.mode", "relative", f"stop.metric={metric} hovers around 0 and can go "
                           "negative; use stop=absolute (stop.mode=absolute)")
     if not (cfg.stop.tolerance > 0 and math.isfinite(cfg.stop.tolerance)):
         raise ConfigError("stop.tolerance", cfg.stop.tolerance, "must be a finite number > 0")
     if not (math.isfinite(cfg.stop.z) and cfg.stop.z >= 0):
         raise ConfigError("stop.z", cfg.stop.z, "must be a finite number >= 0")
-    _one_of("compute.device", cfg.compute.device, ("cpu", "cuda", "auto"))
-    _one_of("compute.precision", cfg.compute.precision, ("fp32", "bf16"))
+    one_of("compute.device", cfg.compute.device, ("cpu", "cuda", "auto"))
+    one_of("compute.precision", cfg.compute.precision, ("fp32", "bf16"))
     if cfg.compute.device == "cuda":
         import torch
 
         if not torch.cuda.is_available():
             raise ConfigError("compute.device", "cuda", "no CUDA device is visible; use cpu or auto")
-
-
-def _validate_method(cfg: DictConfig) -> None:
-    m = cfg.method
-    _one_of("method.name", m.name, ("progressive", "consistency", "guided"))
-    if m.name == "guided":
-        from .methods.guided import validate_config
-        validate_config(cfg)
-        return
-    if m.name == "progressive":
-        _one_of("method.loss", m.loss, ("snr_trunc", "v"))
-        ratio = cfg.teacher.steps / m.target_steps if m.target_steps > 0 else 0
-        if m.target_steps < 1 or ratio != int(ratio) or ratio < 2 or not _power_of_two(int(ratio)):
-            raise ConfigError("method.target_steps", m.target_steps,
-                              f"must be teacher.steps={cfg.teacher.steps} divided by a power of two >= 2")
-        if not 0 <= m.ema_decay < 1:
-            raise ConfigError("method.ema_decay", m.ema_decay, "must be in [0, 1)")
-        return
-    steps = list(m.steps)
-    if not steps or any(s < 1 for s in steps) or steps != sorted(set(steps), reverse=True):
-        raise ConfigError("method.steps", steps, "must be distinct step counts >= 1 in descending order, e.g. [4, 2, 1]")
-    if max(steps) >= m.grid_points:
-        raise ConfigError("method.steps", steps, f"each must be below method.grid_points={m.grid_points}")
-    if not 0 < m.sigma_min < m.sigma_max:
-        raise ConfigError("method.sigma_min", m.sigma_min, f"must satisfy 0 < sigma_min < sigma_max={m.sigma_max}")
-    if not (math.isfinite(m.rho) and m.rho > 0):
-        raise ConfigError("method.rho", m.rho, "must be > 0")
-    if m.grid_points < 2:
-        raise ConfigError("method.grid_points", m.grid_points, "must be >= 2")
-    _one_of("method.ode_solver", m.ode_solver, ("heun", "euler"))
-    _one_of("method.distance", m.distance, ("pseudo_huber", "l2"))
-    _one_of("method.weighting", m.weighting, ("uniform", "inverse_gap"))
-    if not 0 <= m.ema_decay < 1:
-        raise ConfigError("method.ema_decay", m.ema_decay, "must be in [0, 1)")
-    if m.huber_c is not None and not (math.isfinite(m.huber_c) and m.huber_c > 0):
-        raise ConfigError("method.huber_c", m.huber_c, "must be > 0 or null")
-    if m.sigma_data is not None and m.sigma_data <= 0:
-        raise ConfigError("method.sigma_data", m.sigma_data, "must be > 0 or null")

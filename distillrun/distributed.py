@@ -79,13 +79,6 @@ def setup(device: torch.device) -> None:
     dist.init_process_group(backend=backend)
 
 
-def local_device(device: torch.device) -> torch.device:
-    """cuda -> cuda:LOCAL_RANK under torchrun; cpu stays cpu."""
-    if device.type == "cuda" and world_size() > 1:
-        return torch.device("cuda", int(os.environ.get("LOCAL_RANK", "0")))
-    return device
-
-
 def barrier() -> None:
     if active():
         dist.barrier()

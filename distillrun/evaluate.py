@@ -41,7 +41,7 @@ class Bench:
 
 
 def make_bench(data: Dataset, samples: int, projections: int, bootstrap: int, seed: int,
-               cond_needed: bool, feature_cache: str | None = None) -> Bench:
+               cond_needed: bool) -> Bench:
     g = torch.Generator().manual_seed(seed)
     noise = torch.randn((samples, *data.shape), generator=g)
     cond = None
@@ -56,7 +56,7 @@ def make_bench(data: Dataset, samples: int, projections: int, bootstrap: int, se
         bench.entropy = data.mixture.entropy(200_000, seed)
     if data.is_image:
         from .features import feature_net_for, features
-        bench.feature_net = feature_net_for(data.x, data.labels, cache_dir=feature_cache, seed=seed)
+        bench.feature_net = feature_net_for(data.x, data.labels, seed=seed)
         bench.reference_feats = features(bench.feature_net, reference)
     dim = bench.reference_feats.shape[1] if data.is_image else reference[0].numel()
     bench.projections = metrics.random_projections(dim, projections, seed)

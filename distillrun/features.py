@@ -20,14 +20,15 @@ from __future__ import annotations
 import hashlib
 import json
 import os
-import tempfile
 import time
 from pathlib import Path
 
 import torch
-from safetensors.torch import load_file, save_file
+from safetensors.torch import load_file
 from torch import nn
 from torch.nn import functional as F
+
+from . import checkpoint
 
 FORMAT_VERSION = 1
 DEFAULT_CACHE_DIR = Path("~/.cache/distillrun/features")
@@ -88,18 +89,6 @@ def cache_key(images: torch.Tensor, labels: torch.Tensor | None, arch: dict, see
                          "batch_size": BATCH_SIZE, "lr": LEARNING_RATE, "version": FORMAT_VERSION},
                         sort_keys=True).encode())
     return h.hexdigest()[:32]
-
-
-def _atomic_write(path: Path, write) -> None:
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
-    os.close(fd)
-    try:
-        write(tmp)
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
 
 
 def _train(net: FeatureNet, images: torch.Tensor, labels: torch.Tensor | None, seed: int, iterations: int) -> dict:
@@ -171,8 +160,8 @@ def feature_net_for(images: torch.Tensor, labels: torch.Tensor | None = None,
     folder.mkdir(parents=True, exist_ok=True)
     state = {k: v.detach().contiguous() for k, v in net.state_dict().items()}
     # weights first, metadata last: a reader needs both, so a crash in between leaves no half entry
-    _atomic_write(weights_path, lambda p: save_file(state, p, metadata={"key": key}))
-    _atomic_write(meta_path, lambda p: Path(p).write_text(json.dumps(meta, indent=1, sort_keys=True)))
+    checkpoint.atomic_save_tensors(weights_path, state, {"key": key})
+    checkpoint.atomic_write_bytes(meta_path, json.dumps(meta, indent=1, sort_keys=True).encode("utf-8"))
     net.meta = {**meta, "from_cache": False}
     return net
 

@@ -14,6 +14,7 @@ class MetricProps:
     images_only: bool = False  # needs the feature network of image data
     needs_density: bool = False  # needs a known data density (data with an exact mixture)
     signed: bool = False  # hovers around 0 and can go negative: judged by an absolute tolerance only
+    by_size: bool = False  # both signs mean worse: the stop rule compares its size |q|
     log_scale: bool = False  # plotted on a log axis (a positive distance spanning decades)
     stop_metric: bool = True  # may decide the stop rule (has a standard error and a teacher value)
 
@@ -22,7 +23,8 @@ METRIC_PROPS: dict[str, MetricProps] = {
     "sw2": MetricProps("sliced Wasserstein-2 to held-out data", log_scale=True),
     "mmd2": MetricProps("unbiased MMD^2, RBF kernel at the median bandwidth", signed=True),
     "fd": MetricProps("Frechet distance in the feature space of image data", images_only=True, log_scale=True),
-    "nll_gap": MetricProps("mean -log p(sample) minus the entropy of p, in nats", needs_density=True, signed=True),
+    "nll_gap": MetricProps("mean -log p(sample) minus the entropy of p, in nats", needs_density=True, signed=True,
+                           by_size=True),
     "mode_tv": MetricProps("total variation of the share of samples per mode", needs_density=True,
                            stop_metric=False),
     "modes_dropped": MetricProps("modes receiving under 25% of their share", needs_density=True, stop_metric=False),

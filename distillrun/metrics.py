@@ -19,7 +19,7 @@ import torch
 Tensor = torch.Tensor
 
 # Elements per kernel block in the MMD sums: 2^17 float64 = 1 MiB, so each block's distances, exp and sum stay in
-# cache (a 1024 x 4096 block, 32 MiB, made the 4096-point MMD^2 ~4x slower on one CPU thread; benchmarks/eval_cost.py).
+# cache (larger blocks were slower: benchmarks/eval_cost.py, numbers in benchmarks/README.md).
 MMD_BLOCK_ELEMENTS = 1 << 17
 # Points used for the median heuristic (pairs grow quadratically; 2048 points = 2.1M pairs).
 MEDIAN_MAX_POINTS = 2048
@@ -123,7 +123,7 @@ def sliced_w2_bootstrap(x: Tensor, y: Tensor, projections: Tensor, reps: int = B
     """(sliced_w2(x, y, projections), bootstrap_se(lambda a, b: sliced_w2(a, b, projections), x, y, reps=reps,
     seed=seed)): the statistic and its unpaired bootstrap SE (x and y resampled independently, the same index
     draws in the same order), from columns sorted once (`_SortedColumns`) instead of one sort per replicate.
-    Equal to those two calls up to float round-off (benchmarks/eval_cost.py; ~3-4x faster at n = 4096)."""
+    Equal to those two calls up to float round-off, and faster (benchmarks/eval_cost.py, benchmarks/README.md)."""
     if reps < 2:
         raise ValueError("bootstrap needs reps >= 2")
     x, y = _rows(x), _rows(y)

@@ -17,14 +17,18 @@ from __future__ import annotations
 import math
 import shutil
 import time
+from dataclasses import dataclass
 from pathlib import Path
+from typing import Callable
 
 import torch
 from omegaconf import DictConfig
 
-from . import checkpoint, distributed, evaluate, report, runfolder, stopping, training
-from .data import load_dataset
-from .stages import StageSpec, method_for, teacher_sampler
+from . import checkpoint, distributed, evaluate, report, runfolder, stopping
+from .data import DATASETS, load_dataset
+from .methods import Method, StageJob, StageSpec, method_named
+from .nets import NETS, fast_layout, kind_for
+from .samplers import sample, uniform_grid
 from .teachers import Teacher, import_teacher, prepare_teacher
 
 RunFolderError = runfolder.RunFolderError  # re-exported: the CLI and tests name it here
@@ -58,12 +62,11 @@ def preflight(cfg: DictConfig):
     pass of the configured network on it, the user's teacher (import, weights, one forward pass), the run
     folder's config, the tracking store. Returns the loaded data. The global RNG is left as it was."""
     data = load_data(cfg)
-    if cfg.data.path and cfg.data.name in ("array", "image_folder"):
+    if cfg.data.path and DATASETS[cfg.data.name].reads_path:
         _check_spread(cfg, data)
-    if cfg.teacher.source != "import" and (cfg.net.kind == "mlp" and data.is_image or
-                                           cfg.net.kind == "unet" and not data.is_image):
+    if cfg.teacher.source != "import" and NETS[cfg.net.kind].images != data.is_image:
         raise DataError(f"net.kind={cfg.net.kind} does not fit data of shape {data.shape}; "
-                        f"use net={'unet' if data.is_image else 'mlp'}")
+                        f"use net={kind_for(data.is_image)}")
     if cfg.net.class_cond and data.labels is None:
         why = "guided distillation (method=guided) needs labelled data" if cfg.method.name == "guided" else \
             "give labelled data or net.class_cond=false"
@@ -98,17 +101,25 @@ def _try_network(cfg, data) -> None:
         with torch.no_grad():
             out = net(data.x[:2], torch.full((min(2, len(data.x)),), 0.5),
                       data.labels[:2] if cfg.net.class_cond else None)
-        assert out.shape == data.x[:2].shape, f"output shape {tuple(out.shape)}"
+        if out.shape != data.x[:2].shape:
+            raise ValueError(f"output shape {tuple(out.shape)}")
     except Exception as e:  # the sizes do not fit together: name the keys, not the layer
         first = (str(e).strip().splitlines() or [type(e).__name__])[0][:160]
-        sizes = ("width", "depth") if cfg.net.kind == "mlp" else ("base", "mults")
+        sizes = NETS[cfg.net.kind].size_keys
         shown = ", ".join(f"net.{k}={list(cfg.net[k]) if k == 'mults' else cfg.net[k]}" for k in sizes)
         raise DataError(f"net={cfg.net.kind} ({shown}) cannot take data of shape {data.shape} ({first}); "
                         f"change those sizes or the data") from None
 
 
 def plan_stages(cfg: DictConfig) -> list[StageSpec]:
-    return method_for(cfg.method.name).plan(cfg)
+    return method_named(cfg.method.name).plan(cfg)
+
+
+def teacher_sampler(teacher, steps: int, sampler: str = "ddim") -> Callable:
+    """The teacher on a uniform grid of `steps` (its full steps, or a baseline at a student's steps)."""
+    teacher = fast_layout(teacher)
+    return lambda noise, cond: sample(teacher, noise, uniform_grid(steps), sampler, cond=cond,
+                                      generator=torch.Generator().manual_seed(steps))
 
 
 def describe_plan(cfg: DictConfig, stages: list[StageSpec]) -> str:
@@ -138,13 +149,19 @@ def reference_quality(cfg, bench, teacher: Teacher, run_dir: Path) -> dict:
     return ref
 
 
-def evaluate_stage(cfg, bench, spec: StageSpec, method, student, teacher: Teacher, previous_samples):
-    """Quality, baseline and divergence of one stage's student; returns (metrics, student samples)."""
+def student_samples(cfg, method: Method, student, steps: int, bench) -> torch.Tensor:
+    """The student's samples on the run's noise bank."""
+    return evaluate.draw(method.sampler(cfg.method, student, steps, cfg.eval.seed), bench)
+
+
+def evaluate_stage(run: "RunParts", spec: StageSpec, student, previous_samples):
+    """Quality, baseline and divergence of one stage's student; returns (metrics, student samples, seconds)."""
+    cfg, bench = run.cfg, run.bench
     t0 = time.perf_counter()
-    x = evaluate.draw(method.sampler(cfg, student, spec.steps), bench)
-    if method.evaluate is not None:  # the method scores its own students (guided: at every w of a grid)
-        return method.evaluate(cfg, bench, spec.steps, student, teacher.denoiser, teacher.num_classes)[0], x, \
-            time.perf_counter() - t0
+    x = student_samples(cfg, run.method, student, spec.steps, bench)
+    own = run.method.evaluate(cfg, bench, spec, student, run.teacher.denoiser, run.teacher.num_classes)
+    if own is not None:  # the method scores its own students (guided: at every w of a grid)
+        return own, x, time.perf_counter() - t0
     out = evaluate.prefixed("quality", evaluate.quality(bench, x))
     full = bench.cache[f"teacher@{cfg.teacher.steps}"]
     out.update(evaluate.divergence(bench, x, full, "teacher"))
@@ -152,7 +169,7 @@ def evaluate_stage(cfg, bench, spec: StageSpec, method, student, teacher: Teache
         out.update(evaluate.divergence(bench, x, previous_samples, "stage_teacher"))
     if cfg.eval.baseline:
         base, _ = evaluate.cached_draw(bench, f"teacher@{spec.steps}",
-                                       teacher_sampler(teacher.denoiser, spec.steps, "ddim"))
+                                       teacher_sampler(run.teacher.denoiser, spec.steps, "ddim"))
         out.update(evaluate.prefixed("baseline", evaluate.quality(bench, base)))
     return out, x, time.perf_counter() - t0
 
@@ -168,89 +185,79 @@ def attach_verdict(cfg, record: dict, reference: dict) -> dict:
     """Judge a stage with the current stop rule (re-judged on resume, so a looser tolerance continues)."""
     if record["failed"]:
         v = stopping.Verdict(stopping.FAILED, math.nan, math.nan, math.nan, f"training failed: {record['failed']}")
-    elif method_for(cfg.method.name).judge is not None:
-        v = method_for(cfg.method.name).judge(cfg, record["metrics"])
+    elif (own := method_named(cfg.method.name).judge(cfg, record["metrics"])) is not None:
+        v = own
     else:
         quality = {k.split("/", 1)[1]: val for k, val in record["metrics"].items() if k.startswith("quality/")}
         v = stopping.judge(quality, reference["teacher"], cfg.stop.metric, cfg.stop.tolerance, cfg.stop.mode, cfg.stop.z)
     return {**record, "verdict": v.verdict, "rule": v.reason, "limit": v.limit, "margin": v.margin}
 
 
-def run(cfg: DictConfig, recorder, recipe: str | None = None, data=None) -> dict:
-    """Run (or resume) the whole pipeline; returns the summary written to summary.json.
-    `data` is what preflight(cfg) returned, if the caller already ran it."""
+@dataclass
+class RunParts:
+    """What every stage of one run shares. Under torchrun, ranks other than 0 train in lockstep with rank 0
+    (DDP) but write, evaluate and record nothing: is_main is False and bench is None there."""
+    cfg: DictConfig
+    method: Method
+    data: object
+    teacher: Teacher
+    run_dir: Path
+    is_main: bool
+    bench: evaluate.Bench | None = None
+
+
+def run(cfg: DictConfig, recorder, recipe: str | None = None, data=None) -> dict | None:
+    """Run (or resume) the whole pipeline; returns the summary written to summary.json (None on ranks other
+    than 0 under torchrun). `data` is what preflight(cfg) returned, if the caller already ran it."""
     torch.set_num_threads(cfg.compute.threads)
     torch.manual_seed(cfg.seed)
     data = data if data is not None else preflight(cfg)
     stages = plan_stages(cfg)
-    if not distributed.is_main():
-        with training.loop_defaults(cfg.checkpoint_every, cfg.compute.precision):
-            return _follow(cfg, data, stages, Path(cfg.run_dir))
-    run_dir = open_run_dir(cfg)  # locked for this process until the end of the run
+    is_main = distributed.is_main()
+    run_dir = open_run_dir(cfg) if is_main else Path(cfg.run_dir)  # locked for rank 0 until the end of the run
     distributed.barrier()  # the other ranks wait until the folder is ready (fresh=true may have emptied it)
     try:
-        with training.loop_defaults(cfg.checkpoint_every, cfg.compute.precision):
-            return _run(cfg, recorder, recipe, data, stages, run_dir)
+        return _run(cfg, recorder, recipe, data, stages, run_dir)
     finally:
-        runfolder.unlock(run_dir)
+        if is_main:
+            runfolder.unlock(run_dir)
 
 
-def _follow(cfg: DictConfig, data, stages: list[StageSpec], run_dir: Path) -> None:
-    """Ranks other than 0 under torchrun: train every stage in lockstep with rank 0 (DDP), write and
-    evaluate nothing, and stop when rank 0's stop rule says so."""
-    distributed.barrier()
+def _run(cfg: DictConfig, recorder, recipe, data, stages: list[StageSpec], run_dir: Path) -> dict | None:
+    is_main = distributed.is_main()
+    if is_main:
+        checkpoint.atomic_write_json(run_dir / "plan.json", [vars(s) for s in stages])
+        recorder.start(run_dir, recipe)
     teacher = prepare_teacher(cfg, data, run_dir)
-    method = method_for(cfg.method.name)
-    previous, stage_teacher = teacher.init_student, teacher.denoiser
+    run = RunParts(cfg, method_named(cfg.method.name), data, teacher, run_dir, is_main)
+    previous_samples = reference = None
+    if is_main:
+        recorder.teacher(teacher)
+        run.bench = evaluate.make_bench(data, cfg.eval.samples, cfg.eval.projections, cfg.eval.bootstrap,
+                                        cfg.eval.seed, cond_needed=teacher.num_classes > 0)
+        reference = reference_quality(cfg, run.bench, teacher, run_dir)
+        recorder.reference(reference)
+        previous_samples = run.bench.cache[f"teacher@{cfg.teacher.steps}"]
+    records, previous, stage_teacher = [], teacher.init_student, teacher.denoiser
     for spec in stages:
-        stage_dir = run_dir / f"stage-{spec.index:02d}"
-        student = method.make_student(cfg, previous, data)
-        done = stage_dir / "metrics.json"
-        if done.exists() and finished_record(done, spec)["failed"] is None:
-            runfolder.load_model_into(student, stage_dir)
-        else:
-            g = torch.Generator().manual_seed(cfg.seed * 1000 + spec.index)
-            student = method.train(cfg, spec, stage_teacher, student, data, g, stage_dir / "partial.safetensors",
-                                   True, teacher.device).model
-        student.requires_grad_(False)
-        if not distributed.share_flag(None):
-            break
-        previous = student
-        if method.chains:
-            stage_teacher = student
-    return None
-
-
-def _run(cfg: DictConfig, recorder, recipe, data, stages: list[StageSpec], run_dir: Path) -> dict:
-    checkpoint.atomic_write_json(run_dir / "plan.json", [vars(s) for s in stages])
-    recorder.start(run_dir, recipe)
-    teacher = prepare_teacher(cfg, data, run_dir)
-    recorder.teacher(teacher)
-    bench = evaluate.make_bench(data, cfg.eval.samples, cfg.eval.projections, cfg.eval.bootstrap, cfg.eval.seed,
-                                cond_needed=teacher.num_classes > 0)
-    reference = reference_quality(cfg, bench, teacher, run_dir)
-    recorder.reference(reference)
-    method = method_for(cfg.method.name)
-    records, previous = [], teacher.init_student
-    previous_samples = bench.cache[f"teacher@{cfg.teacher.steps}"]
-    stage_teacher = teacher.denoiser
-    for spec in stages:
-        record, student, x = run_stage(cfg, spec, method, stage_teacher, previous, data, bench, teacher,
-                                       previous_samples, run_dir)
-        record = attach_verdict(cfg, record, reference)
-        records.append(record)
-        recorder.stage(record, run_dir / f"stage-{spec.index:02d}")
-        if not distributed.share_flag(record["verdict"] == stopping.WITHIN):  # tells the other ranks too
+        record, student, x = run_stage(run, spec, stage_teacher, previous, previous_samples)
+        go_on = None
+        if is_main:
+            record = attach_verdict(cfg, record, reference)
+            records.append(record)
+            recorder.stage(record, run_dir / f"stage-{spec.index:02d}")
+            go_on = record["verdict"] == stopping.WITHIN
+        if not distributed.share_flag(go_on):  # rank 0's verdict, on every rank
             break
         previous, previous_samples = student, x
-        if method.chains:
+        if run.method.chains_teacher:
             stage_teacher = student
+    if not is_main:
+        return None
     summary = summarize(cfg, stages, records, reference, run_dir)
     if any(r["metrics"] for r in records):  # no point to draw when stage 1 failed (the log axis needs one)
         report.write_plots(summary, run_dir)
-        if cfg.method.name == "guided":
-            from .methods.guided import fidelity_diversity_plot
-            fidelity_diversity_plot(summary, run_dir / "guided_fidelity_diversity.png")
+        run.method.summary_plots(summary, run_dir)
     recorder.finish(summary, run_dir)
     return summary
 
@@ -265,36 +272,51 @@ def finished_record(done: Path, spec: StageSpec) -> dict:
     return record
 
 
-def run_stage(cfg, spec, method, stage_teacher, previous, data, bench, teacher, previous_samples, run_dir):
-    """Train (or load, if already done) one stage and evaluate it. A kill at any point leaves either a
-    finished stage (metrics.json written last) or one that trains again from its last mid-run state."""
-    stage_dir = run_dir / f"stage-{spec.index:02d}"
-    student = method.make_student(cfg, previous, data)
+def stage_seed(cfg, spec: StageSpec) -> int:
+    """Seed of the generator behind every random draw of a stage's training."""
+    return cfg.seed * 1000 + spec.index
+
+
+def run_stage(run: RunParts, spec: StageSpec, stage_teacher, previous, previous_samples):
+    """Train (or load, if already done) one stage and, on rank 0, evaluate and save it; returns (record,
+    student, samples), record and samples None on other ranks. A kill at any point leaves either a finished
+    stage (metrics.json written last) or one that trains again from its last mid-run state."""
+    cfg, method = run.cfg, run.method
+    stage_dir = run.run_dir / f"stage-{spec.index:02d}"
+    student = method.make_student(cfg, previous, run.data)
     done = stage_dir / "metrics.json"
     if done.exists():
         record = finished_record(done, spec)
         if record["failed"] is None:
             runfolder.load_model_into(student, stage_dir)
             student.requires_grad_(False)
+            if not run.is_main:
+                return None, student, None
             (stage_dir / "partial.safetensors").unlink(missing_ok=True)  # a kill came between metrics.json and this
-            return record, student, evaluate.draw(method.sampler(cfg, student, spec.steps), bench)
-        shutil.rmtree(stage_dir)  # a failed stage is tried again from its start
-    stage_dir.mkdir(parents=True, exist_ok=True)
-    g = torch.Generator().manual_seed(cfg.seed * 1000 + spec.index)
-    result = method.train(cfg, spec, stage_teacher, student, data, g, stage_dir / "partial.safetensors", cfg.quiet, teacher.device)
+            return record, student, student_samples(cfg, method, student, spec.steps, run.bench)
+        if run.is_main:
+            shutil.rmtree(stage_dir)  # a failed stage is tried again from its start
+    if run.is_main:
+        stage_dir.mkdir(parents=True, exist_ok=True)
+    job = StageJob(spec, stage_teacher, student, run.data, torch.Generator().manual_seed(stage_seed(cfg, spec)),
+                   stage_dir / "partial.safetensors", run.teacher.device, cfg.quiet)
+    result = method.train(cfg, job)
     student = result.model
     student.requires_grad_(False)
+    if not run.is_main:
+        return None, student, None
     if result.failed:
         record = stage_record(cfg, spec, {}, result, 0.0)
         checkpoint.atomic_write_json(done, record)
         return record, student, None
     checkpoint.kill_point(f"{stage_dir.name}:evaluate")
-    metrics, x, eval_seconds = evaluate_stage(cfg, bench, spec, method, student, teacher, previous_samples)
+    metrics, x, eval_seconds = evaluate_stage(run, spec, student, previous_samples)
     record = stage_record(cfg, spec, metrics, result, eval_seconds)
-    checkpoint.save_model(stage_dir, student.state_dict(), teacher.student_meta(cfg, spec))
+    checkpoint.save_model(stage_dir, student.state_dict(), run.teacher.student_meta(method, cfg.method, student, spec))
     checkpoint.kill_point(f"{stage_dir.name}:weights")
     checkpoint.atomic_write_json(stage_dir / "loss.json", {"loss": result.losses})
-    report.sample_picture(x, bench, stage_dir / "samples.png", f"{cfg.method.name} stage {spec.index}: {report.n_steps(spec.steps)}")
+    report.sample_picture(x, run.bench, stage_dir / "samples.png",
+                          f"{cfg.method.name} stage {spec.index}: {report.n_steps(spec.steps)}")
     checkpoint.atomic_write_json(done, record)
     (stage_dir / "partial.safetensors").unlink(missing_ok=True)
     return record, student, x

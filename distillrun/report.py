@@ -1,6 +1,7 @@
 """Pictures and tables: sample pictures per stage, quality versus steps, the terminal stage table."""
 from __future__ import annotations
 
+import io
 import math
 from pathlib import Path
 
@@ -11,15 +12,17 @@ import matplotlib.pyplot as plt  # noqa: E402
 import torch  # noqa: E402
 
 from . import checkpoint  # noqa: E402
+from .metric_props import METRIC_PROPS  # noqa: E402
 
 SCATTER_POINTS = 2000  # points drawn in 2D scatter plots (more only blurs the picture)
 
 
 def _save(fig, path: Path) -> None:
-    tmp = path.with_name(f".{path.name}.tmp.png")
-    fig.savefig(tmp, dpi=110, bbox_inches="tight")
+    """Render to memory, then the one atomic writer (a kill never leaves half a picture)."""
+    buf = io.BytesIO()
+    fig.savefig(buf, format=Path(path).suffix.lstrip(".") or "png", dpi=110, bbox_inches="tight")
     plt.close(fig)
-    tmp.replace(path)
+    checkpoint.atomic_write_bytes(path, buf.getvalue())
 
 
 def image_grid(x: torch.Tensor, rows: int = 8, cols: int = 8, gap: int = 1) -> torch.Tensor:
@@ -68,7 +71,7 @@ def quality_vs_steps(summaries: list[tuple[str, dict]], metric: str, path: Path)
     ax.axhline(ref["teacher"][metric], color="k", lw=1, label=f"teacher at {ref.get('steps', '?')} steps")
     ax.axhline(ref["floor"][metric], color="0.6", lw=1, linestyle=":", label="floor (data vs data)")
     ax.set_xscale("log", base=2)
-    if metric in ("sw2", "fd"):
+    if METRIC_PROPS.get(metric) is not None and METRIC_PROPS[metric].log_scale:
         ax.set_yscale("log")
     ax.set_xlabel("sampler steps (NFE)")
     ax.set_ylabel(metric)

@@ -39,9 +39,10 @@ def changed_keys(cfg: DictConfig) -> list[str]:
         return []
     try:
         before = OmegaConf.to_container(OmegaConf.load(saved), resolve=True)
-        assert isinstance(before, dict)
     except Exception:  # any YAML or interpolation fault: the file is not a config we wrote
-        raise RunFolderError(f"{saved}: unreadable config; delete the run folder or pass fresh=true") from None
+        before = None
+    if not isinstance(before, dict):
+        raise RunFolderError(f"{saved}: unreadable config; delete the run folder or pass fresh=true")
     now = OmegaConf.to_container(cfg, resolve=True)
     return [f"{k} ({v0!r} -> {v1!r})" for k, v0, v1 in sorted(_diff(before, now))]
 

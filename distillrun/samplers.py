@@ -21,7 +21,7 @@ def karras_grid(steps: int, schedule: Schedule, sigma_min: float, sigma_max: flo
     return torch.cat([schedule.t_from_sigma_ve(sig), torch.zeros(1, dtype=torch.float64)])
 
 
-def _coefs(schedule: Schedule, t: float, x: torch.Tensor):
+def _coefs(schedule: Schedule, t: float):
     alpha, sigma = schedule.alpha_sigma(torch.tensor(float(t), dtype=torch.float64))
     return float(alpha), float(sigma)
 
@@ -31,7 +31,7 @@ def ddim_step(denoiser: Denoiser, x, t: float, s: float, eta: float = 0.0, cond=
     x_s = alpha_s x0_hat + sqrt(sigma_s^2 - c^2) eps_hat + c z, with
     c^2 = eta^2 sigma_s^2 (1 - exp(lambda_t - lambda_s)), the posterior variance of q(x_s | x_t, x0) at eta = 1."""
     x0_hat, eps_hat = denoiser.predict(x, t, cond)
-    alpha_s, sigma_s = _coefs(denoiser.schedule, s, x)
+    alpha_s, sigma_s = _coefs(denoiser.schedule, s)
     if eta == 0.0 or s <= 0.0:
         return alpha_s * x0_hat + sigma_s * eps_hat
     lam_t, lam_s = (float(denoiser.schedule.logsnr(torch.tensor(float(v), dtype=torch.float64))) for v in (t, s))
@@ -51,8 +51,8 @@ def heun_step(denoiser: Denoiser, x, t: float, s: float, cond=None, **_):
     x_ve' = x_ve + (sigma_s - sigma_t) eps(x_t); x_ve(s) = x_ve + (sigma_s - sigma_t) (eps(x_t) + eps(x'_s)) / 2.
     Falls back to Euler where a 2nd evaluation is undefined: into s = 0 and out of alpha_t = 0 (SNR 0)."""
     sch = denoiser.schedule
-    alpha_t, sigma_t = _coefs(sch, t, x)
-    alpha_s, sigma_s = _coefs(sch, s, x)
+    alpha_t, sigma_t = _coefs(sch, t)
+    alpha_s, sigma_s = _coefs(sch, s)
     x0_t, eps_t = denoiser.predict(x, t, cond)
     if s <= 0.0 or alpha_t < 1e-6:  # cosine gives alpha_1 = 6e-17 in floating point, not 0
         return alpha_s * x0_t + sigma_s * eps_t
@@ -77,7 +77,7 @@ def sample(denoiser: Denoiser, noise: torch.Tensor, grid: torch.Tensor, sampler:
     if sampler == "ancestral":
         sampler, eta = "ddim", 1.0
     grid = [float(v) for v in grid]
-    x = _coefs(denoiser.schedule, grid[0], noise)[1] * noise
+    x = _coefs(denoiser.schedule, grid[0])[1] * noise
     step = STEPS[sampler]
     for t, s in zip(grid[:-1], grid[1:]):
         x = step(denoiser, x, t, s, eta=eta, cond=cond, generator=generator) if sampler == "ddim" else step(denoiser, x, t, s, cond=cond)

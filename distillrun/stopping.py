@@ -1,15 +1,18 @@
 """The stop rule: after each stage, is the student's quality within tolerance of the teacher at full steps?
 
 relative: limit = q_teacher * (1 + tolerance)      (sw2, fd: distances that stay > 0)
-absolute: limit = q_teacher + tolerance             (any metric; the only mode for mmd2 and nll_gap,
-                                                     which hover around 0 and can go negative)
+absolute: limit = q_teacher + tolerance             (any metric; the only mode for signed metrics, which
+                                                     hover around 0 and can go negative: metric_props)
 A stage is 'over' only when q - z * se is still above the limit, se = sqrt(se_student^2 + se_teacher^2),
-so sampling noise alone does not stop a run; the NLL gap is compared by its size |q| (DESIGN.md §5).
+so sampling noise alone does not stop a run. A metric whose both signs mean worse (the NLL gap: negative when
+samples pile onto the modes) is compared by its size |q| (MetricProps.by_size).
 """
 from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+
+from .metric_props import METRIC_PROPS
 
 WITHIN, OVER, FAILED = "within", "over", "failed"
 
@@ -31,7 +34,7 @@ def judge(quality: dict, teacher: dict, metric: str, tolerance: float, mode: str
     """Verdict of one stage from its quality dict and the teacher's (both hold metric and metric_se)."""
     q, q_t = quality.get(metric, math.nan), teacher[metric]
     se = math.hypot(quality.get(f"{metric}_se", 0.0), teacher.get(f"{metric}_se", 0.0))
-    if metric == "nll_gap":
+    if METRIC_PROPS[metric].by_size:
         q, q_t = abs(q), abs(q_t)
     limit = limit_for(q_t, tolerance, mode)
     if not math.isfinite(q):

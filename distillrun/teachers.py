@@ -29,23 +29,16 @@ class Teacher:
     device: torch.device
     losses: list
     seconds: float
-    sigma_data: float = 1.0  # the data's standard deviation (consistency preconditioning)
 
     @property
     def num_classes(self) -> int:
         return self.arch.get("num_classes", 0)
 
-    def student_meta(self, cfg, spec) -> dict:
-        meta = {"net": self.arch, "parameterization": self.init_student.parameterization,
-                "schedule": self.init_student.schedule.kind, "method": cfg.method.name,
-                "stage": spec.index, "steps": spec.steps}
-        if cfg.method.name == "guided":
-            from .methods.guided import meta_for
-            meta.update(meta_for(cfg, self.arch))
-        if cfg.method.name == "consistency":
-            meta["consistency"] = OmegaConf.to_container(cfg.method, resolve=True)
-            meta["consistency"]["sigma_data"] = cfg.method.sigma_data or self.sigma_data
-        return meta
+    def student_meta(self, method, method_cfg, student, spec) -> dict:
+        """model.json of a stage's student: how to rebuild its network, plus what its method adds."""
+        return {"net": self.arch, "parameterization": self.init_student.parameterization,
+                "schedule": self.init_student.schedule.kind, "method": method.name, "stage": spec.index,
+                "steps": spec.steps, **method.save_meta(method_cfg, student)}
 
 
 class TeacherError(ValueError):
@@ -83,7 +76,7 @@ def prepare_teacher(cfg, data, run_dir) -> Teacher:
                 "factory_kwargs": OmegaConf.to_container(cfg.teacher.factory_kwargs, resolve=True),
                 "data_shape": list(data.shape), "num_classes": data.num_classes if cfg.net.class_cond else 0}
         den = NetDenoiser(net, cfg.teacher.parameterization, schedule).to(device).requires_grad_(False)
-        return Teacher(den, den, arch, device, [], 0.0, data.sigma_data)
+        return Teacher(den, den, arch, device, [], 0.0)
     net, arch = network_for(cfg, data)
     den = NetDenoiser(net, cfg.teacher.parameterization, schedule).to(device)
     if cfg.compute.compile:
@@ -100,7 +93,7 @@ def prepare_teacher(cfg, data, run_dir) -> Teacher:
         folder.mkdir(parents=True, exist_ok=True)
         t = cfg.teacher
         spec = LoopSpec(iterations=t.iterations, lr=t.lr, warmup=t.warmup, decay="cosine", grad_clip=t.grad_clip,
-                        ema_decay=t.ema_decay, save_every=cfg.checkpoint_every)
+                        ema_decay=t.ema_decay, save_every=cfg.checkpoint_every, precision=cfg.compute.precision)
         null, p = arch["num_classes"], t.label_dropout  # the null label is index num_classes
         loss_fn = oracle_fit_loss(oracle, p, null) if oracle is not None else denoising_loss_with_dropout(p, null)
         draw = data.batches(t.batch_size, device)
@@ -120,7 +113,7 @@ def prepare_teacher(cfg, data, run_dir) -> Teacher:
             checkpoint.save_model(folder, den.state_dict(), meta)
             (folder / "partial.safetensors").unlink(missing_ok=True)
     den.requires_grad_(False)
-    return Teacher(oracle if oracle is not None else den, den, arch, device, losses, seconds, data.sigma_data)
+    return Teacher(oracle if oracle is not None else den, den, arch, device, losses, seconds)
 
 
 class TeacherTrainingFailed(RuntimeError):

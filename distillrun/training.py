@@ -6,9 +6,7 @@ for resume, and the progress bar, so those are written (and tested) once.
 """
 from __future__ import annotations
 
-import contextlib
 import time
-from contextvars import ContextVar
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Callable
@@ -24,28 +22,12 @@ from . import checkpoint, distributed
 # A clipped step is still taken when the gradient norm is large; only a norm this far beyond any
 # sane value ends the run as diverged (common practice: clip at ~1, treat 1e4x that as divergence).
 EXPLODED_GRAD_NORM = 1e4
-# Iterations between mid-run states for loops whose LoopSpec leaves save_every unset: the run's
-# checkpoint_every and precision, set by the pipeline for its duration (see loop_defaults).
-_CHECKPOINT_EVERY: ContextVar[int] = ContextVar("checkpoint_every", default=500)
-_PRECISION: ContextVar[str] = ContextVar("precision", default="fp32")
 
 
-@contextlib.contextmanager
-def loop_defaults(checkpoint_every: int, precision: str = "fp32"):
-    """Within this block, loops save their state every `checkpoint_every` iterations (unless their LoopSpec
-    says otherwise) and run forward passes under bf16 autocast when precision='bf16' on a CUDA device."""
-    tokens = _CHECKPOINT_EVERY.set(int(checkpoint_every)), _PRECISION.set(precision)
-    try:
-        yield
-    finally:
-        _CHECKPOINT_EVERY.reset(tokens[0])
-        _PRECISION.reset(tokens[1])
-
-
-def autocast_for(model: nn.Module):
-    """bf16 autocast for the forward pass and loss on CUDA when asked for (compute.precision); else a no-op."""
+def autocast_for(model: nn.Module, precision: str):
+    """bf16 autocast for the forward pass and loss on CUDA when precision='bf16'; else a no-op."""
     device = next(model.parameters()).device
-    enabled = _PRECISION.get() == "bf16" and device.type == "cuda"
+    enabled = precision == "bf16" and device.type == "cuda"
     return torch.autocast(device_type=device.type, dtype=torch.bfloat16, enabled=enabled)
 
 
@@ -57,7 +39,8 @@ class LoopSpec:
     decay: str = "linear"  # linear | cosine | none: LR after warm-up, ending at 0 (none: constant)
     grad_clip: float = 1.0
     ema_decay: float = 0.0  # 0: no EMA copy, the target network is the model itself
-    save_every: int | None = None  # iterations between mid-run states (resume points); None: loop_defaults
+    save_every: int = 500  # iterations between mid-run states (resume points): a kill loses at most these
+    precision: str = "fp32"  # fp32 | bf16 (autocast of forward pass and loss, CUDA only)
 
 
 @dataclass
@@ -110,8 +93,8 @@ def make_ema(model: nn.Module, decay: float) -> nn.Module:
 
 
 def make_optimizer(model: nn.Module, lr: float) -> torch.optim.Optimizer:
-    """Adam on the trainable parameters with the fused kernel (CPU and CUDA): one CPU step is 2.5-6x faster than
-    the default per-tensor loop on our networks (benchmarks/optimizer_step.py)."""
+    """Adam on the trainable parameters with the fused kernel (CPU and CUDA): faster than the default per-tensor
+    loop on our networks (benchmarks/optimizer_step.py; numbers in benchmarks/README.md)."""
     return torch.optim.Adam([p for p in model.parameters() if p.requires_grad], lr=lr, fused=True)
 
 
@@ -180,7 +163,6 @@ def train_loop(model: nn.Module, loss_fn: Callable, draw_batch: Callable, spec: 
     weights, EMA copy (with its update count), Adam moments and step counts, LR scheduler, the generator
     that draws batches and noise, the losses so far and the iteration. Resuming from it continues bit for
     bit (same thread count), because every random draw of the loop comes from `generator`."""
-    save_every = spec.save_every or _CHECKPOINT_EVERY.get()
     kill_label = Path(state_path).parent.name if state_path is not None and checkpoint.KILL_AT else None
     opt = make_optimizer(model, spec.lr)
     sched = make_scheduler(opt, spec)
@@ -194,7 +176,7 @@ def train_loop(model: nn.Module, loss_fn: Callable, draw_batch: Callable, spec: 
     bar = tqdm(range(start, spec.iterations), desc=desc, initial=start, total=spec.iterations,
                disable=True if quiet else None, leave=False, dynamic_ncols=True)  # None: off when not a TTY
     for it in bar:
-        with autocast_for(model):
+        with autocast_for(model, spec.precision):
             loss = loss_fn(trained, kept_model(ema), draw_batch(generator), generator)
         opt.zero_grad(set_to_none=True)
         loss.backward()
@@ -209,7 +191,7 @@ def train_loop(model: nn.Module, loss_fn: Callable, draw_batch: Callable, spec: 
         losses.append(loss.item())
         if it % 50 == 0:
             bar.set_postfix(loss=f"{losses[-1]:.4g}")
-        if state_path is not None and (it + 1) % save_every == 0 and it + 1 < spec.iterations and distributed.is_main():
+        if state_path is not None and (it + 1) % spec.save_every == 0 and it + 1 < spec.iterations and distributed.is_main():
             checkpoint.save_state(state_path, *_state_tensors(model, ema, opt, sched, generator, losses, it + 1))
         if kill_label:
             checkpoint.kill_point(f"{kill_label}:iteration={it + 1}")

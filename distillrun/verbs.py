@@ -135,10 +135,12 @@ def pick_stage(run_dir: Path, summary: dict | None, stage: int | None) -> Path:
     return run_dir / f"stage-{stage:02d}"
 
 
-def rebuild_student(folder: Path, data_fn) -> tuple[object, dict]:
-    """The stage's student as the pipeline sampled it: a NetDenoiser (progressive) or a ConsistencyModel."""
+def rebuild_student(folder: Path) -> tuple[object, dict]:
+    """The saved network of a stage (or of the teacher/ folder) as the pipeline sampled it: a NetDenoiser,
+    wrapped by its method's `rebuild` for a stage."""
     from . import checkpoint, teachers
     from .denoiser import NetDenoiser
+    from .methods import METHODS
     from .schedule import Schedule
 
     state, meta = checkpoint.load_model_files(folder)
@@ -147,16 +149,12 @@ def rebuild_student(folder: Path, data_fn) -> tuple[object, dict]:
     except (ImportError, AttributeError) as e:
         raise InputError(f"{folder / 'model.json'}: cannot rebuild the network ({e}); is the factory's folder "
                          "on PYTHONPATH?") from None
-    c = meta.get("consistency") or {}
-    if meta["method"] == "consistency":  # sigma_data: as saved, else what the pipeline used (the data's std)
-        sigma_data = meta.get("sigma_data") or c.get("sigma_data") or data_fn().sigma_data
     try:
-        sch = meta["schedule"]
-        model = NetDenoiser(net, meta["parameterization"], Schedule(**sch) if isinstance(sch, dict) else Schedule(sch))
-        if meta["method"] == "consistency":
-            from .methods.consistency import ConsistencyModel
-
-            model = ConsistencyModel(model, sigma_data, c["sigma_min"])
+        model = NetDenoiser(net, meta["parameterization"], Schedule(meta["schedule"]))
+        if meta["stage"] > 0:  # a student; stage 0 is the teacher's own network
+            if meta.get("method") not in METHODS:
+                raise ValueError(f"method {meta.get('method')!r} is not one of {', '.join(METHODS)}")
+            model = METHODS[meta["method"]].rebuild(model, meta)
         model.load_state_dict(state)
     except (KeyError, TypeError, ValueError, RuntimeError) as e:
         first = str(e).strip().splitlines()[0] if str(e).strip() else type(e).__name__
@@ -169,11 +167,11 @@ def draw_samples(model, meta: dict, cfg, count: int, seed: int, data_fn, label: 
                  w: float | None = None):
     """The stage's sampler on the noise bank of eval.seed=seed, eval.samples=count (evaluate.make_bench's draw
     order: noise first, then class labels picked from the data's labels). `label` fixes every sample's class;
-    `w` is the guidance weight of a guided student (default: the w its run judged)."""
+    `w` is the guidance weight of a guided student (default: method.judge_w, else the largest w of the grid)."""
     import torch
-    from omegaconf import OmegaConf
 
-    from . import evaluate, stages
+    from . import evaluate
+    from .methods import method_named
 
     g = torch.Generator().manual_seed(seed)
     noise = torch.randn((count, *meta["net"]["data_shape"]), generator=g)
@@ -183,18 +181,12 @@ def draw_samples(model, meta: dict, cfg, count: int, seed: int, data_fn, label: 
         cond = labels[torch.randint(0, len(labels), (count,), generator=g)]
         if label is not None:
             cond = torch.full_like(cond, label)
-    run_cfg = OmegaConf.merge(cfg, {"eval": {"seed": seed}})
-    if meta["method"] == "guided":
-        from .methods import guided
-
-        torch.set_num_threads(cfg.compute.threads)
-        w = w if w is not None else (cfg.method.judge_w if cfg.method.judge_w is not None else max(cfg.method.w_grid))
-        sampler = guided.student_sampler(model, meta["steps"], float(w), meta["guidance"]["sampler"], seed)
-        return evaluate.draw(sampler, SimpleNamespace(noise=noise, cond=cond))
-    if meta["method"] == "consistency":
-        run_cfg.method.sigma_data = model.sigma_data  # resolved: the config may say null (= the data's std)
     torch.set_num_threads(cfg.compute.threads)
-    sampler = stages.method_for(meta["method"]).sampler(run_cfg, model, meta["steps"])
+    method_cfg = cfg.method
+    if w is not None:  # a guided student at the asked weight (checked against its trained range before)
+        from omegaconf import OmegaConf
+        method_cfg = OmegaConf.merge(cfg.method, {"judge_w": float(w)})
+    sampler = method_named(meta["method"]).sampler(method_cfg, model, meta["steps"], seed)
     return evaluate.draw(sampler, SimpleNamespace(noise=noise, cond=cond))
 
 
@@ -239,7 +231,7 @@ def cmd_draw(args) -> int:
         raise InputError(f"--count {count}: must be >= 1")
     data = {}
     data_fn = lambda: data.setdefault("d", pipeline.load_data(cfg))  # noqa: E731  (loaded only when needed)
-    model, meta = rebuild_student(folder, data_fn)
+    model, meta = rebuild_student(folder)
     check_label_and_w(meta, args.label, args.w)
     out = draw_target(args, args.run_dir, meta["stage"], seed, count)
     x = draw_samples(model, meta, cfg, count, seed, data_fn, args.label, args.w)
@@ -329,7 +321,7 @@ def _parser(verb: str) -> argparse.ArgumentParser:
                        "(default: classes drawn like the evaluation's)")
         p.add_argument("--w", type=float, metavar="W", help="guided students: the guidance weight, x_w = (1 + w) "
                        "x(z, c) - w x(z, null), w = 0 the conditional model (scale convention: s = 1 + w); inside the "
-                       "range the student was trained on (default: the w its run judged)")
+                       "range the student was trained on (default: method.judge_w, else the largest w of method.w_grid)")
     else:
         p.add_argument("run_dirs", type=Path, nargs="+", metavar="RUN_DIR", help="one or more finished run folders")
         p.add_argument("--metric", metavar="M", help="quality metric (default: the first run's stop.metric)")

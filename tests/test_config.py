@@ -1,6 +1,6 @@
 """Every YAML under configs/ and recipes/ composes and validates; bad values fail early with an error naming the full
 key; the CLI turns them into one line on stderr and exit code 2, writing nothing. Source: the project's own contract
-(DESIGN.md §4 'Errors'; STYLE.md points 5 and 11) and Hydra's documented compose API (hydra.compose,
+(the project's error rules: one line naming the key, exit code 2) and Hydra's documented compose API (hydra.compose,
 initialize_config_module, version_base 1.3)."""
 from __future__ import annotations
 
@@ -154,7 +154,7 @@ def test_unknown_keys_and_wrong_types_fail_at_compose(overrides, key):
     (["-m", "stop.tolerance=0.1,-1", "dry_run=true"], "stop.tolerance"),
 ])
 def test_cli_bad_input_one_line_exit_2_nothing_written(argv, key, tmp_path):
-    # DESIGN.md §4: config problems are found before any training starts, reported in one line, exit code 2;
+    # Config problems are found before any training starts, reported in one line, exit code 2;
     # nothing is written (no MLflow store, no run folder).
     env = dict(os.environ, OMP_NUM_THREADS="1", PYTHONWARNINGS="ignore")
     proc = subprocess.run([sys.executable, "-m", "distillrun.cli", *argv], cwd=tmp_path, capture_output=True,

@@ -11,10 +11,9 @@ from scipy import stats
 from scipy.integrate import solve_ivp
 
 from distillrun import metrics
-from distillrun.config import ConsistencyConfig
 from distillrun.data.mixture import archipelago
 from distillrun.denoiser import NetDenoiser
-from distillrun.methods.consistency import (ConsistencyModel, c_out, c_skip, consistency_loss, consistency_sample,
+from distillrun.methods.consistency import (ConsistencyConfig, ConsistencyModel, c_out, c_skip, consistency_loss, consistency_sample,
                                             denoise_ve, huber_c_for, interval_weights, pseudo_huber, sample_sigmas,
                                             teacher_ode_step, training_sigmas)
 from distillrun.methods.teacher import oracle_fit_loss
@@ -110,7 +109,8 @@ def test_pseudo_huber_closed_forms():
 
 
 def test_sample_sigmas_lie_on_the_training_grid():
-    # DESIGN.md Sec. 5 (levels off the training grid hurt) and Song et al. 2023, Alg. 1 (first level sigma_max).
+    # Measured here (levels off the training grid hurt: benchmarks/consistency_tuning.py) and Song et al. 2023,
+    # Alg. 1 (first level sigma_max).
     cfg = ConsistencyConfig()
     grid = set(training_sigmas(cfg.grid_points, cfg.sigma_min, cfg.sigma_max, cfg.rho).tolist())
     for sd in (0.5, 1.0):
@@ -168,7 +168,7 @@ def test_target_branch_gets_no_gradient():
     # is the model itself (Song & Dhariwal 2023); its gradient must equal the one against a frozen copy.
     cfg = dataclasses.replace(ConsistencyConfig(), grid_points=6, weighting="inverse_gap")
     teacher = OracleDenoiser(archipelago())
-    loss_fn = consistency_loss(teacher, cfg, 1.0, 2)
+    loss_fn = consistency_loss(teacher, cfg, 2)
     batch = (archipelago().sample(64, torch.Generator().manual_seed(0))[0], None)
     grads = []
     for self_target in (True, False):
@@ -189,7 +189,7 @@ def test_images_with_labels_run_through_loss_and_sampler():
     model = ConsistencyModel(copy.deepcopy(teacher), 0.5, 0.002)
     cfg = dataclasses.replace(ConsistencyConfig(), grid_points=6)
     x0, labels = torch.randn(4, 1, 8, 8), torch.tensor([0, 1, 2, 0])
-    loss = consistency_loss(teacher, cfg, 0.5, 64)(model, model, (x0, labels), torch.Generator().manual_seed(0))
+    loss = consistency_loss(teacher, cfg, 64)(model, model, (x0, labels), torch.Generator().manual_seed(0))
     assert loss.dim() == 0 and torch.isfinite(loss)
     with torch.no_grad():
         assert torch.equal(model(x0, 0.002, labels), x0)
@@ -255,7 +255,7 @@ def distilled():
                               iterations=400, batch_size=256)
     sd = float(data.std())
     spec = LoopSpec(iterations=cfg.iterations, lr=cfg.lr, ema_decay=cfg.ema_decay, grad_clip=cfg.grad_clip)
-    res = train_loop(ConsistencyModel(student, sd, cfg.sigma_min), consistency_loss(oracle, cfg, sd, 2), draw, spec,
+    res = train_loop(ConsistencyModel(student, sd, cfg.sigma_min), consistency_loss(oracle, cfg, 2), draw, spec,
                      generator=torch.Generator().manual_seed(2), quiet=True)
     assert res.failed is None
     return mix, oracle, res.model, cfg, sd
@@ -301,7 +301,7 @@ def test_tuned_defaults_reach_low_nll_gap():
     cfg = dataclasses.replace(ConsistencyConfig(), sigma_max=20.0, weighting="inverse_gap", lr=1e-3, iterations=1000)
     sd = float(data.std())
     spec = LoopSpec(iterations=cfg.iterations, lr=cfg.lr, ema_decay=cfg.ema_decay, grad_clip=cfg.grad_clip)
-    model = train_loop(ConsistencyModel(student, sd, cfg.sigma_min), consistency_loss(oracle, cfg, sd, 2),
+    model = train_loop(ConsistencyModel(student, sd, cfg.sigma_min), consistency_loss(oracle, cfg, 2),
                        lambda g: draw(g), spec, generator=torch.Generator().manual_seed(2), quiet=True).model
     noise = torch.randn(4000, 2, generator=torch.Generator().manual_seed(5))
     nll = [_nll(mix, consistency_sample(model, noise, sample_sigmas(k, cfg, sd), torch.Generator().manual_seed(3)))

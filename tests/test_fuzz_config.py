@@ -20,6 +20,8 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from distillrun import cli, config, pipeline
+from distillrun.methods.consistency import ConsistencyConfig
+from distillrun.methods.progressive import ProgressiveConfig
 
 GROUP_OPTIONS = {
     "data": ["archipelago", "spiral", "rings", "digits", "tiles", "array", "image_folder", "nope"],
@@ -27,7 +29,7 @@ GROUP_OPTIONS = {
     "stop": ["relative", "absolute"], "tracking": ["local", "off"], "compute": ["cpu", "gpu"],
 }
 NODES = {"data": config.DataConfig, "net": config.NetConfig, "teacher": config.TeacherConfig,
-         "method": config.ConsistencyConfig, "eval": config.EvalConfig, "stop": config.StopConfig,
+         "method": ConsistencyConfig, "eval": config.EvalConfig, "stop": config.StopConfig,
          "tracking": config.TrackingConfig, "compute": config.ComputeConfig}
 NAMES = ["archipelago", "digits", "mlp", "unet", "cosine", "linear", "v", "eps", "x0", "ddim", "ancestral", "heun",
          "euler", "snr_trunc", "l2", "pseudo_huber", "inverse_gap", "uniform", "sw2", "mmd2", "fd", "nll_gap",
@@ -38,7 +40,7 @@ NAMES = ["archipelago", "digits", "mlp", "unet", "cosine", "linear", "v", "eps",
 def keys() -> list[tuple[str, type]]:
     """Every key of the schema with its annotated type, plus ProgressiveConfig's own keys."""
     out = [(f"{group}.{f.name}", f.type) for group, node in NODES.items() for f in dataclasses.fields(node)]
-    out += [(f"method.{f.name}", f.type) for f in dataclasses.fields(config.ProgressiveConfig)]
+    out += [(f"method.{f.name}", f.type) for f in dataclasses.fields(ProgressiveConfig)]
     out += [(f.name, f.type) for f in dataclasses.fields(config.RunConfig) if f.name not in NODES
             and f.name not in ("run_dir", "dry_run")]
     return sorted(set(out))

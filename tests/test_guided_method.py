@@ -295,3 +295,31 @@ def test_bad_guided_input_is_refused_in_one_line(tmp_path, overrides, says):
     lines = err.getvalue().strip().splitlines()
     assert exit_.value.code == 2 and len(lines) == 1 and says in lines[0], lines
     assert not (tmp_path / "run").exists()
+
+
+@pytest.mark.parametrize("source", ["oracle", "train"])
+def test_teacher_training_gets_label_dropout_and_the_null_label(tmp_path, monkeypatch, source):
+    # The wiring of teacher.label_dropout: prepare_teacher builds its loss with p and the null index K (= number of
+    # classes), and the loss then hands the network the null label at that rate (a recording network).
+    from distillrun import teachers
+    from distillrun.methods import teacher as T
+    from distillrun.pipeline import load_data
+
+    seen = {}
+    real = {"oracle": T.oracle_fit_loss, "train": T.denoising_loss_with_dropout}[source]
+
+    def spy(*args):
+        seen["args"] = args[-2:]
+        return real(*args)
+    monkeypatch.setattr(teachers, "oracle_fit_loss" if source == "oracle" else "denoising_loss_with_dropout", spy)
+    cfg = _compose(*GUIDED_TINY, f"teacher={source}", "teacher.label_dropout=0.3", "teacher.iterations=2",
+                   f"run_dir={tmp_path}")
+    teachers.prepare_teacher(cfg, load_data(cfg), tmp_path)
+    assert seen["args"] == (0.3, K)
+    rec = NetDenoiser(VNet(OracleDenoiser(archipelago(), Schedule("cosine"), labelled=True), Schedule("cosine")), "v",
+                      Schedule("cosine"))
+    x, labels = _data(20000).x, _data(20000).labels
+    real(*((OracleDenoiser(archipelago(), labelled=True),) if source == "oracle" else ()), 0.3, K)(
+        rec, None, (x, labels), torch.Generator().manual_seed(0))
+    share = float((rec.net.seen[-1] == K).float().mean())
+    assert abs(share - 0.3) < 4 * math.sqrt(0.3 * 0.7 / 20000)

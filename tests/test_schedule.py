@@ -61,7 +61,7 @@ def test_cosine_alpha2_matches_nichol_dhariwal_formula():
 
 @pytest.mark.parametrize("kind", KINDS)
 def test_variance_preserving(kind):
-    # Definition of a VP process (Song et al. 2021, VP SDE; DESIGN.md §2): alpha^2 + sigma^2 = 1.
+    # Definition of a VP process (Song et al. 2021, VP SDE): alpha^2 + sigma^2 = 1.
     alpha, sigma = Schedule(kind).alpha_sigma(_t(np.linspace(0, 1, 513)))
     np.testing.assert_allclose((alpha**2 + sigma**2).numpy(), 1.0, rtol=0, atol=1e-14)
     assert float(alpha[0]) == 1.0 and float(sigma[0]) == 0.0  # t = 0 is the data itself

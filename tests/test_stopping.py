@@ -1,5 +1,5 @@
 """The stop rule (distillrun.stopping) on hand-made quality dicts. The rule is the project's own
-(DESIGN.md §4 'Stop rule' and §5 'decide with error bars'); every expected value is hand arithmetic."""
+(the stop rule of distillrun/stopping.py, decided with error bars); every expected value is hand arithmetic."""
 from __future__ import annotations
 
 import math
@@ -56,7 +56,7 @@ def test_missing_metric_fails():
 
 
 def test_nll_gap_compared_by_absolute_value():
-    # DESIGN.md §5: the NLL gap can go negative when samples pile onto modes; bound its size |gap|.
+    # The NLL gap can go negative when samples pile onto modes; bound its size |gap|.
     teacher = {"nll_gap": -0.02, "nll_gap_se": 0.0}
     # limit = |-0.02| + 0.2 = 0.22
     v = judge({"nll_gap": -0.3}, teacher, "nll_gap", 0.2, "absolute", z=2.0)
@@ -76,7 +76,7 @@ def _stage(index, steps, verdict):
 
 
 def test_choose_picks_fewest_steps_within():
-    # DESIGN.md §4: the result is the last stage within tolerance, i.e. the fewest steps that passed.
+    # The result is the last stage within tolerance, i.e. the fewest steps that passed.
     stages = [_stage(1, 8, WITHIN), _stage(2, 4, WITHIN), _stage(3, 2, OVER)]
     assert choose(stages)["steps"] == 4
     stages = [_stage(1, 4, WITHIN), _stage(2, 2, OVER), _stage(3, 1, WITHIN)]

@@ -5,6 +5,7 @@ for the archipelago mixture the exact `mixture` (density, oracle denoiser, mode 
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Callable
 
 import torch
 
@@ -58,24 +59,68 @@ class Dataset:
         return self.x[torch.randperm(self.x.shape[0], generator=g)[:n]]
 
 
+@dataclass(frozen=True)
+class DataSource:
+    """A dataset name's entry: how it loads, and what validation may know before loading it."""
+    load: Callable  # load(data_cfg) -> Dataset; ValueError or OSError with a one-line reason
+    images: bool = False  # (N, C, S, S) images: image-only metrics apply, a U-Net fits
+    known_density: bool = False  # holds its exact density (Dataset.mixture): exact teacher, density metrics
+    reads_path: bool = False  # the user's files at data.path
+
+
+def _archipelago(cfg) -> Dataset:
+    mix = archipelago()
+    return Dataset(cfg.name, *mix.sample(cfg.n_train, torch.Generator().manual_seed(cfg.seed)), mixture=mix)  # labels: the islands
+
+
+def _spiral(cfg) -> Dataset:
+    from .shapes2d import spiral
+    return Dataset(cfg.name, spiral(cfg.n_train, cfg.seed))
+
+
+def _rings(cfg) -> Dataset:
+    from .shapes2d import rings
+    return Dataset(cfg.name, rings(cfg.n_train, cfg.seed))
+
+
+def _digits(cfg) -> Dataset:
+    from .images import digits
+    return Dataset(cfg.name, *digits(cfg.image_size, cfg.seed))
+
+
+def _tiles(cfg) -> Dataset:
+    from .images import tiles
+    return Dataset(cfg.name, *tiles(cfg.n_train, cfg.image_size, cfg.seed))
+
+
+def _array(cfg) -> Dataset:
+    from .files import load_array
+    return Dataset(cfg.name, *load_array(cfg.path, cfg.key, rescale=cfg.rescale))
+
+
+def _image_folder(cfg) -> Dataset:
+    from .files import load_image_folder
+    return Dataset(cfg.name, *load_image_folder(cfg.path, cfg.image_size))
+
+
+DATASETS: dict[str, DataSource] = {
+    "archipelago": DataSource(_archipelago, known_density=True),
+    "spiral": DataSource(_spiral),
+    "rings": DataSource(_rings),
+    "digits": DataSource(_digits, images=True),
+    "tiles": DataSource(_tiles, images=True),
+    "array": DataSource(_array, reads_path=True),
+    "image_folder": DataSource(_image_folder, images=True, reads_path=True),
+}
+
+
+def register_dataset(name: str, source: DataSource) -> None:
+    """Add a dataset under data.name=<name> (validation, loading and the metrics read its DataSource)."""
+    DATASETS[name] = source
+
+
 def load_dataset(cfg) -> Dataset:
     """Build the dataset named by cfg (a DataConfig); raises ValueError with a one-line reason."""
-    from . import files, images, shapes2d
-
-    g = torch.Generator().manual_seed(cfg.seed)
-    if cfg.name == "archipelago":
-        mix = archipelago()
-        return Dataset(cfg.name, *mix.sample(cfg.n_train, g), mixture=mix)  # labels: the islands
-    if cfg.name == "spiral":
-        return Dataset(cfg.name, shapes2d.spiral(cfg.n_train, cfg.seed))
-    if cfg.name == "rings":
-        return Dataset(cfg.name, shapes2d.rings(cfg.n_train, cfg.seed))
-    if cfg.name == "digits":
-        return Dataset(cfg.name, *images.digits(cfg.image_size, cfg.seed))
-    if cfg.name == "tiles":
-        return Dataset(cfg.name, *images.tiles(cfg.n_train, cfg.image_size, cfg.seed))
-    if cfg.name == "array":
-        return Dataset(cfg.name, *files.load_array(cfg.path, cfg.key, rescale=cfg.rescale))
-    if cfg.name == "image_folder":
-        return Dataset(cfg.name, *files.load_image_folder(cfg.path, cfg.image_size))
-    raise ValueError(f"data.name={cfg.name!r} is unknown")
+    if cfg.name not in DATASETS:
+        raise ValueError(f"data.name={cfg.name!r} is unknown; valid: {', '.join(DATASETS)}")
+    return DATASETS[cfg.name].load(cfg)

@@ -11,14 +11,19 @@ holds exactly because c_skip(sigma_min) = 1 and c_out(sigma_min) = 0 in floating
 """
 from __future__ import annotations
 
+import copy
 import math
+from dataclasses import dataclass, field
+from typing import Optional
 
 import torch
 from torch import nn
 
 from ..denoiser import Denoiser, NetDenoiser, shared_time
 from ..distributed import current_shard
+from ..nets import fast_layout
 from ..schedule import broadcast, karras_sigmas
+from . import Method, MethodConfig, StageSpec, device_of, register
 
 SOLVERS = ("heun", "euler")
 DISTANCES = ("pseudo_huber", "l2")
@@ -28,6 +33,24 @@ HUBER_C_PER_SQRT_DIM = 0.00054
 # Highest re-noising level of multistep sampling, in units of sigma_data (see `sample_sigmas`; tuned on the
 # archipelago mixture in benchmarks/consistency_tuning.py).
 RENOISE_CEILING = 0.25
+
+
+@dataclass
+class ConsistencyConfig(MethodConfig):
+    name: str = "consistency"
+    steps: list[int] = field(default_factory=lambda: [4, 2, 1])  # one stage per entry, descending
+    iterations: int = 2000  # per stage
+    lr: float = 1e-3  # tuned: training is budget-limited (benchmarks/README.md)
+    ema_decay: float = 0.95  # target network EMA rate; 0 allowed (Song & Dhariwal 2023)
+    sigma_min: float = 0.002  # paper value (Song et al. 2023)
+    sigma_max: float = 80.0  # paper value
+    rho: float = 7.0  # paper value (Karras et al. 2022)
+    grid_points: int = 18  # N; paper value for CIFAR-10 distillation
+    ode_solver: str = "heun"  # heun | euler
+    distance: str = "pseudo_huber"  # pseudo_huber | l2
+    huber_c: Optional[float] = None  # None: 0.00054 * sqrt(d) (Song & Dhariwal 2023)
+    weighting: str = "inverse_gap"  # inverse_gap: 1 / (sigma_{n+1} - sigma_n) (Song & Dhariwal 2023) | uniform
+    sigma_data: Optional[float] = None  # None: the data's standard deviation
 
 
 # ------------------------------------------------------------------------------------------ coefficients
@@ -53,15 +76,13 @@ def training_sigmas(grid_points: int, sigma_min: float, sigma_max: float, rho: f
 
 
 def sample_sigmas(steps: int, cfg, sigma_data: float | None = None) -> list[float]:
-    """Noise levels for `steps`-step sampling (Song et al. 2023, Alg. 1), all on the training grid (DESIGN.md
-    Sec. 5: levels off the grid made 2 steps worse than 1). Rule: sigma_max, then the steps - 1 grid points
-    that descend from the highest one at or below RENOISE_CEILING sigma_data (sigma_min excluded: re-noising
-    to it adds no noise and returns the input); when fewer lie below the ceiling, the next ones above it.
-    Why low levels (benchmarks/consistency_tuning.py, archipelago, 1000 iterations): the learned f is least
-    accurate at sigma ~ 1-3 sigma_data, where the island is decided, and most accurate below; re-noising there
-    keeps the island and redraws the shape. 1-step NLL gap 0.78; 2 steps via 0.22 sigma_data: 0.31, via ~1
-    sigma_data: 0.62; with weaker training (uniform weighting, lr 2e-4) levels near sigma_data made 2 steps
-    worse than 1 (2.71 vs 2.19). sigma_data defaults to cfg.sigma_data."""
+    """Noise levels for `steps`-step sampling (Song et al. 2023, Alg. 1), all on the training grid (levels off
+    the grid made 2 steps worse than 1). Rule: sigma_max, then the steps - 1 grid points that descend from the
+    highest one at or below RENOISE_CEILING sigma_data (sigma_min excluded: re-noising to it adds no noise and
+    returns the input); when fewer lie below the ceiling, the next ones above it. Why low levels: the learned f
+    is least accurate at sigma ~ 1-3 sigma_data, where the island is decided, and most accurate below;
+    re-noising there keeps the island and redraws the shape (measurements: benchmarks/README.md, consistency
+    tuning). sigma_data defaults to cfg.sigma_data."""
     n = cfg.grid_points
     if not 1 <= steps <= n - 1:
         raise ValueError(f"steps={steps}: consistency sampling on a {n}-point grid allows 1..{n - 1} steps")
@@ -114,7 +135,7 @@ def per_sample_sigma(sigma, x: torch.Tensor) -> torch.Tensor:
 
 def denoise_ve(denoiser: Denoiser, x_ve: torch.Tensor, sigma, cond=None) -> torch.Tensor:
     """D(x_ve, sigma) = E[x0 | x_ve] through the VP-frame denoiser: x_t = alpha x_ve, alpha = 1/sqrt(1 + sigma^2),
-    t = t(sigma_ve) (Karras et al. 2022, Sec. 2; DESIGN.md Sec. 2). x0 is the same in both frames."""
+    t = t(sigma_ve) (Karras et al. 2022, Sec. 2). x0 is the same in both frames."""
     sigma = per_sample_sigma(sigma, x_ve)
     if shared_time(sigma):  # one level for all rows: keep t expanded so the net embeds it once
         t = denoiser.schedule.t_from_sigma_ve(sigma[:1]).to(x_ve.dtype).expand(sigma.shape[0])
@@ -174,13 +195,11 @@ class ConsistencyModel(nn.Module):
 
 
 # ------------------------------------------------------------------------------------------ the loss
-def consistency_loss(teacher: Denoiser, cfg, sigma_data: float, dim: int):
+def consistency_loss(teacher: Denoiser, cfg, dim: int):
     """loss_fn(model, target, batch, generator) for `training.train_loop` (Song et al. 2023, Alg. 2):
     n ~ U{1..N-1}, x_{n+1} = x0 + sigma_{n+1} z, x_hat_n = one teacher ODE step sigma_{n+1} -> sigma_n,
     loss = mean lambda(sigma_n) d(f_model(x_{n+1}, sigma_{n+1}), f_target(x_hat_n, sigma_n)), no gradient
-    through the teacher or the target (the EMA copy, or the model itself when ema_decay = 0).
-    `sigma_data` is kept for the signature the pipeline uses; the model carries its own."""
-    del sigma_data
+    through the teacher or the target (the EMA copy, or the model itself when ema_decay = 0)."""
     if cfg.distance not in DISTANCES:
         raise ValueError(f"distance '{cfg.distance}' is unknown; valid: {', '.join(DISTANCES)}")
     sigmas = training_sigmas(cfg.grid_points, cfg.sigma_min, cfg.sigma_max, cfg.rho)
@@ -217,3 +236,74 @@ def consistency_sample(model: ConsistencyModel, noise: torch.Tensor, sigmas, gen
         z = torch.randn(noise.shape, generator=generator, dtype=noise.dtype).to(noise.device)
         x0 = model(x0 + math.sqrt(max(sigma**2 - model.sigma_min**2, 0.0)) * z, sigma, cond)
     return x0
+
+
+# ------------------------------------------------------------------------------------------- the method
+class Consistency(Method):
+    name = "consistency"
+    config = ConsistencyConfig
+    chains_teacher = False  # every stage learns from the original teacher
+
+    def validate(self, cfg) -> None:
+        from ..config import ConfigError, one_of
+
+        m = cfg.method
+        steps = list(m.steps)
+        if not steps or any(s < 1 for s in steps) or steps != sorted(set(steps), reverse=True):
+            raise ConfigError("method.steps", steps,
+                              "must be distinct step counts >= 1 in descending order, e.g. [4, 2, 1]")
+        if max(steps) >= m.grid_points:
+            raise ConfigError("method.steps", steps, f"each must be below method.grid_points={m.grid_points}")
+        if not 0 < m.sigma_min < m.sigma_max:
+            raise ConfigError("method.sigma_min", m.sigma_min, f"must satisfy 0 < sigma_min < sigma_max={m.sigma_max}")
+        if not (math.isfinite(m.rho) and m.rho > 0):
+            raise ConfigError("method.rho", m.rho, "must be > 0")
+        if m.grid_points < 2:
+            raise ConfigError("method.grid_points", m.grid_points, "must be >= 2")
+        one_of("method.ode_solver", m.ode_solver, SOLVERS)
+        one_of("method.distance", m.distance, DISTANCES)
+        one_of("method.weighting", m.weighting, WEIGHTINGS)
+        if m.huber_c is not None and not (math.isfinite(m.huber_c) and m.huber_c > 0):
+            raise ConfigError("method.huber_c", m.huber_c, "must be > 0 or null")
+        if m.sigma_data is not None and m.sigma_data <= 0:
+            raise ConfigError("method.sigma_data", m.sigma_data, "must be > 0 or null")
+
+    def plan(self, cfg) -> list[StageSpec]:
+        return [StageSpec(i + 1, n, cfg.teacher.steps, cfg.method.iterations) for i, n in enumerate(cfg.method.steps)]
+
+    def make_student(self, cfg, previous, data):
+        """Stage 1 wraps a copy of the teacher's denoiser; later stages continue the previous student."""
+        if isinstance(previous, ConsistencyModel):
+            student = copy.deepcopy(previous)
+        else:
+            sigma_data = cfg.method.sigma_data or data.sigma_data
+            student = ConsistencyModel(copy.deepcopy(previous), sigma_data, cfg.method.sigma_min)
+        student = fast_layout(student, in_place=True)
+        student.requires_grad_(True)
+        return student
+
+    def loss(self, cfg, job):
+        return consistency_loss(fast_layout(job.teacher), cfg.method, job.data.x[0].numel())
+
+    def sampler(self, method_cfg, student, steps, seed):
+        sigmas = sample_sigmas(steps, method_cfg, student.sigma_data)
+
+        def draw(noise, cond):
+            g = torch.Generator().manual_seed(seed + steps)  # the same intermediate noise every stage
+            with torch.no_grad():
+                return consistency_sample(student, noise.to(device_of(student)), sigmas, g, cond=cond)
+        return draw
+
+    def save_meta(self, method_cfg, student) -> dict:
+        from omegaconf import OmegaConf
+
+        saved = OmegaConf.to_container(method_cfg, resolve=True) if OmegaConf.is_config(method_cfg) else \
+            dict(vars(method_cfg))
+        return {"consistency": {**saved, "sigma_data": student.sigma_data}}
+
+    def rebuild(self, denoiser, meta):
+        c = meta["consistency"]
+        return ConsistencyModel(denoiser, c["sigma_data"], c["sigma_min"])
+
+
+register(Consistency())

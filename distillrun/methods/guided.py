@@ -27,16 +27,19 @@ from .. import evaluate, metrics, stopping
 from ..denoiser import GuidanceCond, NetDenoiser, target_for
 from ..distributed import current_shard
 from ..guidance import Guided, WithWeight, stochastic_sample
+from ..nets import fast_layout
 from ..samplers import sample, uniform_grid
+from ..training import train_loop
+from . import Method, MethodConfig, StageJob, StageSpec, register, stage_loop_spec
 from .teacher import draw_noisy
 
 STUDENT_SAMPLERS = ("ddim", "stochastic")  # stochastic: Meng et al. 2023's 2-step-then-renoise sampler
 
 
 @dataclass
-class GuidedConfig:
+class GuidedConfig(MethodConfig):
     """method=guided. Guidance weight w: x_w = (1 + w) x(z, c) - w x(z, null), w = 0 the conditional model
-    (scale convention: s = 1 + w, so w_min=0, w_max=4 is s from 1 to 5)."""
+    (scale convention: s = 1 + w, so w_min=0, w_max=4 is s from 1 to 5). iterations, lr: per halving stage."""
 
     name: str = "guided"
     target_steps: int = 4  # halve down to this; teacher.steps / target_steps must be a power of two
@@ -44,15 +47,10 @@ class GuidedConfig:
     w_max: float = 4.0
     w_grid: list[float] = field(default_factory=lambda: [0.0, 1.0, 2.0, 4.0])  # every stage is scored at these w
     judge_w: Optional[float] = None  # the w the stop rule judges; null: the worst w of w_grid
-    fit_iterations: int = 2500  # stage one (the guidance fit): 800 left 1.7x the RMS error at w = 0 and w = 4 (measured)
+    fit_iterations: int = 2500  # stage one (the guidance fit): 800 left up to 1.7x the RMS error at the ends of the w range
     fit_lr: float = 5e-4
-    iterations: int = 600  # per halving stage
-    batch_size: int = 512
-    lr: float = 3e-4  # decays linearly to 0 within each stage (Salimans & Ho 2022)
     loss: str = "snr_trunc"  # halving loss weight: snr_trunc (max(SNR, 1)) | v (SNR + 1)
     sampler: str = "ddim"  # how students sample: ddim | stochastic (Meng et al. 2023: 2-step DDIM, re-noise 1 step)
-    ema_decay: float = 0.0
-    grad_clip: float = 1.0
 
 
 def validate_config(cfg) -> None:
@@ -206,7 +204,9 @@ def per_label_fidelity(bench, x: torch.Tensor, labels: torch.Tensor) -> torch.Te
         return bench.mixture.responsibilities(x)[torch.arange(len(x)), labels].float()
     if bench.feature_net is not None and getattr(bench.feature_net, "arch", {}).get("n_classes", 0) > 0:
         with torch.no_grad():
-            return torch.softmax(bench.feature_net(x), dim=1)[torch.arange(len(x)), labels].float()
+            net = bench.feature_net  # features -> its classifier head (the feature network's training head)
+            return torch.softmax(net.head(net(x.to(next(net.parameters()).device))), dim=1).cpu()[
+                torch.arange(len(x)), labels].float()
     return None
 
 
@@ -322,26 +322,6 @@ def judge_guided(metrics_: dict, w_grid, metric: str, tolerance: float, mode: st
 
 # ------------------------------------------------------------------------------------- pipeline glue
 SECOND_BANK_OFFSET = 7919  # the independent noise bank of the guided reference: seed eval.seed + this
-
-
-def train_stage(cfg, index: int, steps: int, stage_teacher, student, data, generator, state_path, quiet, device):
-    """Stage one: guidance fit against Guided(stage_teacher); later stages: progressive halving of the previous
-    w-conditioned student (stage_teacher), w ~ U[w_min, w_max] per example in every batch."""
-    from . import progressive
-    from ..training import LoopSpec, train_loop
-
-    m = cfg.method
-    draw = with_guidance_weights(data.batches(m.batch_size, device), float(m.w_min), float(m.w_max))
-    if index == 1:
-        loss_fn = guidance_fit_loss(Guided(stage_teacher, data.num_classes))
-        loop = LoopSpec(iterations=m.fit_iterations, lr=m.fit_lr, decay="linear", grad_clip=m.grad_clip,
-                        ema_decay=m.ema_decay)
-        desc = f"stage 1 (guidance fit, {steps} steps)"
-    else:
-        loss_fn = progressive.progressive_loss(stage_teacher, steps, m.loss)
-        loop = LoopSpec(iterations=m.iterations, lr=m.lr, decay="linear", grad_clip=m.grad_clip, ema_decay=m.ema_decay)
-        desc = f"stage {index} ({steps} steps)"
-    return train_loop(student, loss_fn, draw, loop, generator=generator, state_path=state_path, desc=desc, quiet=quiet)
 
 
 def evaluate_stage(cfg, bench, steps: int, student, teacher_denoiser, num_classes: int) -> tuple[dict, float]:
@@ -482,3 +462,65 @@ def per_w_curves(runs: list[tuple[str, dict]], metric: str, path) -> bool:
     plt.close(fig)
     checkpoint.atomic_write_bytes(path, buf.getvalue())
     return True
+
+
+# ------------------------------------------------------------------------------------- the method
+class GuidedMethod(Method):
+    """method=guided: stage one (guidance fit), then progressive halving of the w-conditioned student."""
+    name = "guided"
+    config = GuidedConfig
+    chains_teacher = True  # stage one learns from the guided teacher; every later stage from the previous student
+
+    def validate(self, cfg) -> None:
+        validate_config(cfg)
+
+    def plan(self, cfg) -> list[StageSpec]:
+        plan = stage_plan(cfg.teacher.steps, cfg.method.target_steps)
+        return [StageSpec(i + 1, n, tn, cfg.method.fit_iterations if i == 0 else cfg.method.iterations)
+                for i, (n, tn) in enumerate(plan)]
+
+    def make_student(self, cfg, previous, data):
+        """Stage one: the teacher's network plus a w-embedding with no effect yet; later: a copy of the previous."""
+        return fast_layout(w_student(previous), in_place=True)
+
+    def loss(self, cfg, job: StageJob):
+        if job.spec.index == 1:
+            return guidance_fit_loss(Guided(fast_layout(job.teacher), job.data.num_classes))
+        from .progressive import progressive_loss
+        return progressive_loss(fast_layout(job.teacher), job.spec.steps, cfg.method.loss)
+
+    def train(self, cfg, job: StageJob):
+        m = cfg.method
+        spec = stage_loop_spec(cfg, job.spec)
+        desc = f"stage {job.spec.index} ({job.spec.steps} steps)"
+        if job.spec.index == 1:
+            spec, desc = replace(spec, lr=m.fit_lr), f"stage 1 (guidance fit, {job.spec.steps} steps)"
+        draw = with_guidance_weights(job.data.batches(m.batch_size, job.device), float(m.w_min), float(m.w_max))
+        return train_loop(job.student, self.loss(cfg, job), draw, spec, generator=job.generator,
+                          state_path=job.state_path, desc=desc, quiet=job.quiet)
+
+    def sampler(self, method_cfg, student, steps, seed):
+        """At the judged w (method.judge_w, else the largest w of the grid); `draw --w` picks any w in range."""
+        w = method_cfg.judge_w if method_cfg.judge_w is not None else max(method_cfg.w_grid)
+        return student_sampler(student, steps, float(w), method_cfg.sampler, seed)
+
+    def save_meta(self, method_cfg, student) -> dict:
+        return {"guidance": {"w_min": float(method_cfg.w_min), "w_max": float(method_cfg.w_max),
+                             "w_grid": [float(w) for w in method_cfg.w_grid], "sampler": method_cfg.sampler}}
+
+    def rebuild(self, denoiser, meta: dict):
+        return w_student(denoiser).requires_grad_(False)
+
+    def evaluate(self, cfg, bench, spec, student, teacher_denoiser, num_classes):
+        return evaluate_stage(cfg, bench, spec.steps, student, teacher_denoiser, num_classes)[0]
+
+    def judge(self, cfg, metrics_):
+        return verdict_of(cfg, metrics_)
+
+    def summary_plots(self, summary, run_dir):
+        path = run_dir / "guided_fidelity_diversity.png"
+        fidelity_diversity_plot(summary, path)
+        return [path]
+
+
+register(GuidedMethod())

@@ -3,11 +3,28 @@ its teacher takes in two, on a uniform grid of N student steps; the finished stu
 stage's teacher, so each stage halves the step count."""
 from __future__ import annotations
 
+import copy
+from dataclasses import dataclass
+
 import torch
 
 from ..denoiser import Denoiser, NetDenoiser
 from ..distributed import current_shard
+from ..nets import fast_layout
+from ..samplers import sample, uniform_grid
 from ..schedule import broadcast
+from . import Method, MethodConfig, StageSpec, device_of, register
+
+LOSSES = ("snr_trunc", "v")
+
+
+@dataclass
+class ProgressiveConfig(MethodConfig):
+    name: str = "progressive"
+    target_steps: int = 1  # stop halving here; teacher.steps / target_steps must be a power of two
+    iterations: int = 600  # per stage (CPU times of the recipes: benchmarks/README.md)
+    lr: float = 3e-4  # decays linearly to 0 within each stage (Salimans & Ho 2022)
+    loss: str = "snr_trunc"  # snr_trunc: x-space loss weighted max(SNR, 1) | v: weight SNR + 1
 
 
 def ddim_to(x0_hat, eps_hat, alpha_s, sigma_s):
@@ -70,3 +87,42 @@ def stage_plan(start_steps: int, target_steps: int) -> list[int]:
         plan.append(steps)
     return plan
 
+
+def _power_of_two(n: int) -> bool:
+    return n >= 1 and (n & (n - 1)) == 0
+
+
+class Progressive(Method):
+    name = "progressive"
+    config = ProgressiveConfig
+    chains_teacher = True  # each finished student teaches the next stage
+
+    def validate(self, cfg) -> None:
+        from ..config import ConfigError, one_of
+
+        m = cfg.method
+        one_of("method.loss", m.loss, LOSSES)
+        ratio = cfg.teacher.steps / m.target_steps if m.target_steps > 0 else 0
+        if m.target_steps < 1 or ratio != int(ratio) or ratio < 2 or not _power_of_two(int(ratio)):
+            raise ConfigError("method.target_steps", m.target_steps,
+                              f"must be teacher.steps={cfg.teacher.steps} divided by a power of two >= 2")
+
+    def plan(self, cfg) -> list[StageSpec]:
+        steps = stage_plan(cfg.teacher.steps, cfg.method.target_steps)
+        return [StageSpec(i + 1, n, 2 * n, cfg.method.iterations) for i, n in enumerate(steps)]
+
+    def make_student(self, cfg, previous, data):
+        """A fresh trainable copy of the previous stage's denoiser (the teacher's network at stage 1)."""
+        student = fast_layout(copy.deepcopy(previous), in_place=True)
+        student.requires_grad_(True)
+        return student
+
+    def loss(self, cfg, job):
+        return progressive_loss(fast_layout(job.teacher), job.spec.steps, cfg.method.loss)
+
+    def sampler(self, method_cfg, student, steps, seed):
+        return lambda noise, cond: sample(student, noise.to(device_of(student)), uniform_grid(steps), "ddim",
+                                          cond=cond)
+
+
+register(Progressive())

@@ -6,11 +6,12 @@ x_t = alpha_t x0 + sigma_t eps, loss = ||net(x_t, t) - target||^2 with target = 
 from __future__ import annotations
 
 import torch
+from omegaconf import ListConfig
 from torch import nn
 
 from ..denoiser import NetDenoiser, target_for
 from ..distributed import current_shard
-from ..nets import build_net
+from ..nets import NETS, build_net
 from ..schedule import Schedule, broadcast
 
 # Times are drawn from [T_MIN, 1]: at t = 0 the input equals the data and the target is degenerate.
@@ -78,8 +79,8 @@ def oracle_fit_loss(oracle, p: float = 0.0, null_label: int = 0):
 def network_for(cfg, data) -> tuple[nn.Module, dict]:
     """The configured network for this data, and the arguments that rebuild it."""
     num_classes = data.num_classes if cfg.net.class_cond else 0
-    kwargs = dict(width=cfg.net.width, depth=cfg.net.depth) if cfg.net.kind == "mlp" else \
-        dict(base=cfg.net.base, mults=tuple(cfg.net.mults))
+    kwargs = {k: tuple(v) if isinstance(v, (list, ListConfig)) else v
+              for k in NETS[cfg.net.kind].size_keys for v in [cfg.net[k]]}
     net = build_net(cfg.net.kind, data.shape, num_classes, **kwargs)
     arch = {"kind": cfg.net.kind, "data_shape": list(data.shape), "num_classes": num_classes, "kwargs": kwargs}
     return net, arch

@@ -93,6 +93,9 @@ class TimeMLP(nn.Module):
     """net(x (B, dim), t (B,), cond (B,) or None) -> (B, dim). The input layer sees [x, emb(t, cond)];
     every residual block adds a projection of the same embedding."""
 
+    images = False  # takes (d,) vectors
+    size_keys = ("width", "depth")  # the net.* config keys that size it
+
     def __init__(self, dim: int, width: int = 256, depth: int = 4, time_features: int = 32,
                  num_classes: int = 0, layer_norm: bool = False, guidance: bool = False):
         super().__init__()
@@ -114,9 +117,3 @@ class TimeMLP(nn.Module):
         for block in self.blocks:
             h = block(h, emb)
         return self.out(torch.nn.functional.silu(self.out_norm(h)))
-
-
-def count_params(net: nn.Module) -> int:
-    """Number of trainable scalars (for logs and reports)."""
-    return sum(p.numel() for p in net.parameters() if p.requires_grad)
-

@@ -45,6 +45,9 @@ class SmallUNet(nn.Module):
     S / 2**len(mults). cond: (B,) labels in [0, num_classes], label num_classes = "no class"; with
     guidance=True a denoiser.GuidanceCond(labels, w) (see CondEmbedding)."""
 
+    images = True  # takes (C, S, S) images
+    size_keys = ("base", "mults")  # the net.* config keys that size it
+
     def __init__(self, channels: int = 1, image_size: int = 16, base: int = 32, mults=(1, 2),
                  num_classes: int = 0, time_features: int = 32, guidance: bool = False):
         super().__init__()
