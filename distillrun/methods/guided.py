@@ -409,6 +409,7 @@ def fidelity_diversity_plot(summary: dict, path) -> None:
         ax.plot(xs, ys, marker=marker, label=f"{name}, {nfe:.0f} NFE")
         for k, x, y in zip(keys, xs, ys):
             ax.annotate(k, (x, y), textcoords="offset points", xytext=(4, 4), fontsize=8)
+    ax.ticklabel_format(axis="x", useOffset=False)  # fidelities near 1 differ in the 5th digit: print them whole
     ax.set_xlabel("label fidelity: mean p(intended label | sample)")
     ax.set_ylabel("diversity: spread within a label")
     ax.set_title("guidance: fidelity vs diversity over w")
