@@ -91,7 +91,7 @@ def renoise(x_s, alpha_s, sigma_s, alpha_t, sigma_t, z):
 def stochastic_sample(denoiser: Denoiser, noise: torch.Tensor, steps: int, cond=None,
                       generator: torch.Generator | None = None, t_max: float = 1.0) -> torch.Tensor:
     """The stochastic few-step sampler of Meng et al. 2023 (Sec. 4, "stochastic sampling"; transcribed from the
-    paper's description): on the uniform grid t_i = t_max (1 - i / steps), from t_i take one deterministic DDIM
+    paper's description as remembered, not checked against its text here): on the uniform grid t_i = t_max (1 - i / steps), from t_i take one deterministic DDIM
     step of twice the grid's length, to t_{i+2}, then re-noise back by one step length to t_{i+1} with the
     forward process; the last step, from t_{steps-1}, is a plain deterministic step to 0. One denoiser call
     per step (`steps` in all); with a guided teacher each call costs 2 evaluations. A 1-step run is plain DDIM.

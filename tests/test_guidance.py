@@ -168,7 +168,8 @@ def test_guided_combination_is_per_row():
 
 # ------------------------------------------------------------------------------------- stochastic sampler
 def test_stochastic_sampler_follows_meng_et_al_description():
-    # Meng et al. 2023, Sec. 4 (stochastic sampling), transcribed independently here: on the N-step grid, from t_i
+    # Meng et al. 2023, Sec. 4 (stochastic sampling; from memory of the paper's description), transcribed
+    # independently here: on the N-step grid, from t_i
     # one deterministic DDIM step of twice the step length (to t_{i+2}), then one stochastic step back (to t_{i+1})
     # with the forward process q(x_{t_{i+1}} | x_{t_{i+2}}); the last step is deterministic to 0.
     sch = Schedule("cosine")
