@@ -143,6 +143,9 @@ def run_job(cfg) -> int:
     if summary is None:  # a rank other than 0 under torchrun: rank 0 reports
         return 0
     print(report.stage_table(summary))
+    if summary["method"] == "guided":
+        from .methods.guided import per_w_table
+        print(per_w_table(summary))
     print(f"run folder: {cfg.run_dir}")
     if cfg.tracking.enabled:
         print(f"MLflow: {tracking.ui_hint(cfg.tracking.uri)}")

@@ -54,6 +54,10 @@ class TeacherConfig:
     warmup: int = 200  # linear LR warm-up, then cosine decay to 0
     ema_decay: float = 0.999
     grad_clip: float = 1.0
+    # Class-conditional teachers (net.class_cond=true): the share of training labels replaced by the null label,
+    # so the one network also learns the unconditional denoiser that classifier-free guidance needs
+    # (Ho & Salimans 2022; 0.1-0.2 is common practice). In [0, 1); 0 = no unconditional model.
+    label_dropout: float = 0.0
     factory: Optional[str] = None  # import: "package.module:function" returning an nn.Module
     factory_kwargs: dict[str, Any] = field(default_factory=dict)
     weights: Optional[str] = None  # import: safetensors file of that module's state dict
@@ -225,6 +229,8 @@ def validate(cfg: DictConfig) -> None:
                     "eval.samples", "eval.projections", "eval.bootstrap", "checkpoint_every"])
     if not 0 <= cfg.teacher.ema_decay < 1:
         raise ConfigError("teacher.ema_decay", cfg.teacher.ema_decay, "must be in [0, 1)")
+    if not (0 <= cfg.teacher.label_dropout < 1):
+        raise ConfigError("teacher.label_dropout", cfg.teacher.label_dropout, "must be in [0, 1) (0.1-0.2 is usual)")
     if cfg.teacher.warmup < 0:
         raise ConfigError("teacher.warmup", cfg.teacher.warmup, "must be >= 0")
     one_of("method.name", cfg.method.name, METHODS)

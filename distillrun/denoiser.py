@@ -6,6 +6,7 @@ denoiser in `nets/oracle.py` is one).
 """
 from __future__ import annotations
 
+from dataclasses import dataclass
 from typing import Protocol
 
 import torch
@@ -17,6 +18,37 @@ PARAMETERIZATIONS = ("v", "eps", "x0")
 # eps-prediction divides by alpha_t to recover x0; at the top of the cosine schedule alpha_t = 0.
 # Clamp so the division stays finite (common practice; v- and x0-prediction need no clamp).
 ALPHA_FLOOR = 1e-4
+
+
+@dataclass(frozen=True)
+class GuidanceCond:
+    """The condition of a guidance-conditioned student: class labels (B,) and guidance weights w (B,), passed
+    wherever a plain label tensor goes (cond=...). w follows x_w = (1 + w) x(z, c) - w x(z, null): w = 0 is
+    the plain conditional model (the other common convention, a scale s = 1 + w, has s = 1 there).
+    Indexing by rows and .to(device) act on both, so data-parallel sharding handles it like a tensor."""
+
+    labels: torch.Tensor
+    w: torch.Tensor
+
+    @property
+    def shape(self) -> torch.Size:
+        return self.labels.shape
+
+    def __len__(self) -> int:
+        return self.labels.shape[0]
+
+    def __getitem__(self, rows) -> "GuidanceCond":
+        return GuidanceCond(self.labels[rows], self.w[rows])
+
+    def to(self, device) -> "GuidanceCond":
+        return GuidanceCond(self.labels.to(device), self.w.to(device))
+
+
+def split_cond(cond) -> tuple[torch.Tensor | None, torch.Tensor | None]:
+    """(labels or None, w or None) from a cond that is None, a label tensor or a GuidanceCond."""
+    if isinstance(cond, GuidanceCond):
+        return cond.labels, cond.w
+    return cond, None
 
 
 class Denoiser(Protocol):

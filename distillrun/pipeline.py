@@ -69,7 +69,9 @@ def preflight(cfg: DictConfig):
         raise DataError(f"net.kind={cfg.net.kind} does not fit data of shape {data.shape}; "
                         f"use net={kind_for(data.is_image)}")
     if cfg.net.class_cond and data.labels is None:
-        raise DataError(f"net.class_cond=true but data.name={cfg.data.name} has no labels")
+        why = "guided distillation (method=guided) needs labelled data" if cfg.method.name == "guided" else \
+            "give labelled data or net.class_cond=false"
+        raise DataError(f"net.class_cond=true but data.name={cfg.data.name} has no labels; {why}")
     with torch.random.fork_rng(devices=[]):  # user code and network init must not shift the run's seed
         if cfg.teacher.source == "import":
             net = import_teacher(cfg.teacher.factory, cfg.teacher.factory_kwargs, cfg.teacher.weights, data.shape,
@@ -201,6 +203,9 @@ def evaluate_stage(run: "RunParts", spec: StageSpec, student, previous_samples):
     cfg, bench = run.cfg, run.bench
     t0 = time.perf_counter()
     x = student_samples(cfg, run.method, student, spec.steps, bench)
+    own = run.method.evaluate(cfg, bench, spec, student, run.teacher.denoiser, run.teacher.num_classes)
+    if own is not None:  # the method scores its own students (guided: at every w of a grid)
+        return own, x, time.perf_counter() - t0
     out = evaluate.prefixed("quality", evaluate.quality(bench, x))
     full = bench.cache[f"teacher@{cfg.teacher.steps}"]
     out.update(evaluate.divergence(bench, x, full, "teacher"))
@@ -225,6 +230,8 @@ def attach_verdict(cfg, record: dict, reference: dict) -> dict:
     """Judge a stage with the current stop rule (re-judged on resume, so a looser tolerance continues)."""
     if record["failed"]:
         v = stopping.Verdict(stopping.FAILED, math.nan, math.nan, math.nan, f"training failed: {record['failed']}")
+    elif (own := method_named(cfg.method.name).judge(cfg, record["metrics"])) is not None:
+        v = own
     else:
         quality = {k.split("/", 1)[1]: val for k, val in record["metrics"].items() if k.startswith("quality/")}
         v = stopping.judge_rule(quality, reference["teacher"], cfg.stop)
@@ -315,6 +322,7 @@ def _run(cfg: DictConfig, recorder, recipe, data, stages: list[StageSpec], run_d
     summary = summarize(cfg, stages, records, reference, run_dir)
     if any(r["metrics"] for r in records):  # no point to draw when stage 1 failed (the log axis needs one)
         report.write_plots(summary, run_dir)
+        run.method.summary_plots(summary, run_dir)
     recorder.finish(summary, run_dir)
     return summary
 

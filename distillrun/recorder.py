@@ -151,7 +151,7 @@ class Recorder:
             row = next(r for r in summary["stages"] if r["index"] == chosen["index"])
             self._log_new({"chosen/steps": chosen["steps"], "chosen/stage": chosen["index"],
                            **{f"chosen/{k}": v for k, v in row["metrics"].items()}}, self.tracker.logged_metrics())
-        for name in ("summary.json", "quality_vs_steps.png", "config.yaml"):
+        for name in ("summary.json", "quality_vs_steps.png", "guided_fidelity_diversity.png", "config.yaml"):
             if (run_dir / name).exists():
                 self.tracker.log_artifact(run_dir / name)
 

@@ -18,7 +18,7 @@ import logging
 from . import checkpoint, distributed, runfolder, threads
 from .teacher_cache import TeacherCache, cache_root, key_document, key_of
 from .denoiser import NetDenoiser
-from .methods.teacher import denoising_loss, network_for, oracle_fit_loss
+from .methods.teacher import denoising_loss_with_dropout, network_for, oracle_fit_loss
 from .nets import build_net
 from .nets.oracle import OracleDenoiser
 from .schedule import Schedule
@@ -88,7 +88,8 @@ def prepare_teacher(cfg, data, run_dir) -> Teacher:
     den = NetDenoiser(net, cfg.teacher.parameterization, schedule).to(device)
     if cfg.compute.compile:
         net.compile()  # in place: torch.compile of forward, same state_dict keys; students inherit it by copy
-    oracle = OracleDenoiser(data.mixture, schedule) if cfg.teacher.source == "oracle" else None
+    oracle = OracleDenoiser(data.mixture, schedule, labelled=arch["num_classes"] > 0) \
+        if cfg.teacher.source == "oracle" else None
     if (folder / "model.json").exists():
         meta = runfolder.load_model_into(den, folder)
         losses, seconds = meta.get("losses", []), meta.get("seconds", 0.0)
@@ -144,7 +145,8 @@ def _train(cfg, data, oracle, den, arch, folder, device):
     t = cfg.teacher
     spec = LoopSpec(iterations=t.iterations, lr=t.lr, warmup=t.warmup, decay="cosine", grad_clip=t.grad_clip,
                     ema_decay=t.ema_decay, save_every=cfg.checkpoint_every, precision=cfg.compute.precision)
-    loss_fn = oracle_fit_loss(oracle) if oracle is not None else denoising_loss
+    null, p = arch["num_classes"], t.label_dropout  # the null label is index num_classes
+    loss_fn = oracle_fit_loss(oracle, p, null) if oracle is not None else denoising_loss_with_dropout(p, null)
     draw = data.batches(t.batch_size, device)
     g = torch.Generator().manual_seed(cfg.seed)
     result = train_loop(den, loss_fn, draw, spec, generator=g, state_path=folder / "partial.safetensors",

@@ -1,7 +1,8 @@
 """The verbs beside the run command. `main(verb, argv)` parses, runs, and turns bad input into one line, exit 2.
 
   distillrun recipes [NAME]                                  every recipe: purpose, CPU time, command; NAME: its YAML
-  distillrun draw RUN_DIR [--stage N] [--beside-teacher] [--count N] [--seed S] [--out PATH]   (--stage 0: teacher)
+  distillrun draw RUN_DIR [--stage N] [--beside-teacher] [--count N] [--seed S] [--out PATH] [--label C] [--w W]
+                                                                                             (--stage 0: teacher)
   distillrun compare RUN_DIR [RUN_DIR ...] [--metric M] [--out DIR]
   distillrun merge RUN_DIR [--stage N] [--out DIR]            an adapter student as one full network
 
@@ -191,12 +192,18 @@ def load_base_teacher(model, folder: Path, meta: dict) -> None:
 
 
 # --------------------------------------------------------------------------------------------------- draw
-def draw_samples(model, meta: dict, cfg, count: int, seed: int, data_fn):
-    """The stage's sampler on the noise bank of eval.seed=seed, eval.samples=count."""
+def draw_samples(model, meta: dict, cfg, count: int, seed: int, data_fn, label: int | None = None,
+                 w: float | None = None):
+    """The stage's sampler on the noise bank of eval.seed=seed, eval.samples=count. `label` fixes every sample's
+    class; `w` is the guidance weight of a guided student (default: method.judge_w, else the largest w of the grid)."""
     from .methods import method_named
 
-    return _draw_on_bank(method_named(meta["method"]).sampler(cfg.method, model, meta["steps"], seed),
-                         meta, cfg, count, seed, data_fn)
+    method_cfg = cfg.method
+    if w is not None:  # a guided student at the asked weight (checked against its trained range before)
+        from omegaconf import OmegaConf
+        method_cfg = OmegaConf.merge(cfg.method, {"judge_w": float(w)})
+    return _draw_on_bank(method_named(meta["method"]).sampler(method_cfg, model, meta["steps"], seed),
+                         meta, cfg, count, seed, data_fn, label)
 
 
 def draw_teacher(teacher, meta: dict, cfg, count: int, seed: int, data_fn):
@@ -217,8 +224,25 @@ def _scored_count(run_dir: Path, cfg) -> int:
         return cfg.eval.samples
 
 
+def check_label_and_w(meta: dict, label: int | None, w: float | None) -> None:
+    """--label needs a class-conditional student and one of its classes; --w a guided student and a weight inside
+    the range it was trained on."""
+    if w is not None and meta["method"] != "guided":
+        raise InputError(f"--w {w:g}: only a guided student (method=guided) takes a guidance weight; this one is "
+                         f"{meta['method']}")
+    if label is not None and not meta["net"]["num_classes"]:
+        raise InputError(f"--label {label}: this student is unconditional (no labels)")
+    if label is not None or w is not None:
+        from .methods.guided import check_request
+        try:
+            check_request(meta, label, w)
+        except ValueError as e:
+            raise InputError(str(e)) from None
+
+
 def draw_target(args, run_dir: Path, index: int, seed: int, count: int) -> Path:
-    name = f"stage-{index:02d}_seed-{seed}_n-{count}.npy"
+    extra = (f"_label-{args.label}" if args.label is not None else "") + (f"_w-{args.w:g}" if args.w is not None else "")
+    name = f"stage-{index:02d}_seed-{seed}_n-{count}{extra}.npy"
     out = args.out if args.out is not None else run_dir / "drawn" / name
     if out.is_dir():
         return out / name
@@ -241,7 +265,7 @@ def teacher_model(run_dir: Path, cfg, data_fn):
     return teacher, meta
 
 
-def _draw_on_bank(sampler, meta: dict, cfg, count: int, seed: int, data_fn):
+def _draw_on_bank(sampler, meta: dict, cfg, count: int, seed: int, data_fn, label: int | None = None):
     """sampler(noise, cond) on the noise bank of eval.seed=seed, eval.samples=count (evaluate.make_bench's draw
     order: noise first, then class labels picked from the data's labels)."""
     import torch
@@ -255,6 +279,8 @@ def _draw_on_bank(sampler, meta: dict, cfg, count: int, seed: int, data_fn):
     if meta["net"]["num_classes"]:
         labels = data_fn().labels
         cond = labels[torch.randint(0, len(labels), (count,), generator=g)]
+        if label is not None:
+            cond = torch.full_like(cond, label)
     apply_setting(cfg.compute.threads, probe=False)  # auto: the cores this process may use
     return evaluate.draw(sampler, SimpleNamespace(noise=noise, cond=cond))
 
@@ -278,13 +304,14 @@ def cmd_draw(args) -> int:
     else:
         folder = pick_stage(args.run_dir, summary, args.stage)
         model, meta = rebuild_student(folder)
+        check_label_and_w(meta, args.label, args.w)
         if args.beside_teacher:
             teacher, _ = teacher_model(args.run_dir, cfg, data_fn)
     out = draw_target(args, args.run_dir, meta["stage"], seed, count)
     if meta["stage"] == 0:
         x = draw_teacher(teacher, meta, cfg, count, seed, data_fn)
     else:
-        x = draw_samples(model, meta, cfg, count, seed, data_fn)
+        x = draw_samples(model, meta, cfg, count, seed, data_fn, args.label, args.w)
     beside = draw_teacher(teacher, meta, cfg, count, seed, data_fn) if meta["stage"] and teacher is not None else None
     backdrop = torch.empty(0, *x.shape[1:])  # the data behind a 2D scatter, when it can still be loaded
     if x.dim() == 2:
@@ -342,6 +369,9 @@ def cmd_compare(args) -> int:
     report.quality_vs_steps(legends, metric, paths[0])
     report.divergence_vs_steps(legends, paths[1])
     report.samples_side_by_side([(label, d) for (label, _), d in zip(runs, args.run_dirs)], summaries, paths[2])
+    from .methods.guided import per_w_curves
+    if per_w_curves(runs, metric, out / "compare_guided_per_w.png"):  # guided runs: metric vs NFE at each w
+        paths.append(out / "compare_guided_per_w.png")
     print("plots: " + ", ".join(str(p) for p in paths))
     return 0
 
@@ -401,6 +431,11 @@ def _parser(verb: str) -> argparse.ArgumentParser:
                        "default count this repeats the samples the stage was scored on)")
         p.add_argument("--out", type=Path, metavar="PATH", help="a .npy file or an existing folder (default: "
                        "RUN_DIR/drawn/stage-NN_seed-S_n-N.npy); the picture goes beside it as .png")
+        p.add_argument("--label", type=int, metavar="C", help="class-conditional students: every sample of class C "
+                       "(default: classes drawn like the evaluation's)")
+        p.add_argument("--w", type=float, metavar="W", help="guided students: the guidance weight, x_w = (1 + w) "
+                       "x(z, c) - w x(z, null), w = 0 the conditional model (scale convention: s = 1 + w); inside the "
+                       "range the student was trained on (default: method.judge_w, else the largest w of method.w_grid)")
     elif verb == "merge":
         p.add_argument("run_dir", type=Path, metavar="RUN_DIR", help="a finished run folder with adapter students")
         p.add_argument("--stage", type=int, metavar="N", help="stage index (default: the chosen student)")

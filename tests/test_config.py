@@ -62,6 +62,8 @@ def _with_required_files(overrides: list[str], files: Path):
             extra.append("teacher.factory=my_models:build_teacher")
         if not cfg.teacher.weights:
             extra.append(f"teacher.weights={files / 'teacher.safetensors'}")
+    if cfg.method.name == "guided" and not cfg.net.class_cond:  # guided distils a class-conditional teacher
+        extra += ["net.class_cond=true", "teacher.label_dropout=0.15"]
     return _compose(overrides + extra) if extra else cfg
 
 

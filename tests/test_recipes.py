@@ -31,6 +31,7 @@ EXPECTED = {
     "archipelago_adapters": ("archipelago", "mlp", "progressive", "train"),
     "archipelago_consistency": ("archipelago", "mlp", "consistency", "train"),
     "archipelago_both": ("archipelago", "mlp", None, "oracle"),
+    "archipelago_guided": ("archipelago", "mlp", "guided", "oracle"),
     "digits_progressive": ("digits", "unet", "progressive", "train"),
     "digits_consistency": ("digits", "unet", "consistency", "train"),
     "tiles_progressive": ("tiles", "unet", "progressive", "train"),

@@ -16,7 +16,7 @@ from .mixture import GaussianMixture, archipelago
 class Dataset:
     name: str
     x: torch.Tensor  # (N, d) points or (N, C, H, W) images in [-1, 1]
-    labels: torch.Tensor | None = None  # (N,) int64 class labels, if any
+    labels: torch.Tensor | None = None  # (N,) int64 class labels, if any (archipelago: the island index)
     mixture: GaussianMixture | None = None  # exact density (archipelago only)
 
     @property
@@ -70,7 +70,7 @@ class DataSource:
 
 def _archipelago(cfg) -> Dataset:
     mix = archipelago()
-    return Dataset(cfg.name, mix.sample(cfg.n_train, torch.Generator().manual_seed(cfg.seed))[0], mixture=mix)
+    return Dataset(cfg.name, *mix.sample(cfg.n_train, torch.Generator().manual_seed(cfg.seed)), mixture=mix)  # labels: the islands
 
 
 def _archipelago_moved(cfg) -> Dataset:

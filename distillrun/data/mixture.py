@@ -2,7 +2,8 @@
 marginal, component responsibilities, and the posterior mean E[x0 | x_t] (the oracle denoiser).
 
 Our demo scenario, "archipelago": six islands of unequal mass and shape, two of them small, so a
-few-step sampler that drops a mode shows it in the mode-coverage table.
+few-step sampler that drops a mode shows it in the mode-coverage table. The islands are also the labels
+of the labelled archipelago (label k = component k), so class-conditional denoisers are exact too.
 """
 from __future__ import annotations
 
@@ -54,7 +55,10 @@ class GaussianMixture:
         cov = alpha**2 * self.covs + sigma**2 * eye  # (B, K, d, d)
         diff = x_t[:, None, :] - alpha[..., 0] * self.means  # (B, K, d)
         chol = torch.linalg.cholesky(cov)
-        sol = torch.cholesky_solve(diff.unsqueeze(-1), chol).squeeze(-1)
+        if cov.shape[0] == 1:  # one time for the whole batch: K precision matrices, applied to every row at once
+            sol = torch.einsum("kij,bkj->bki", torch.cholesky_inverse(chol[0]), diff)
+        else:
+            sol = torch.cholesky_solve(diff.unsqueeze(-1), chol).squeeze(-1)
         maha = (diff * sol).sum(-1)
         logdet = 2 * torch.log(torch.diagonal(chol, dim1=-2, dim2=-1)).sum(-1)
         logn = -0.5 * (maha + logdet + self.dim * math.log(2 * math.pi))
@@ -71,13 +75,19 @@ class GaussianMixture:
         """p(k | x_t), shape (B, K)."""
         return torch.softmax(self._noisy_components(x, alpha, sigma)[0], dim=1)
 
-    def posterior_mean(self, x_t, alpha, sigma) -> torch.Tensor:
-        """E[x0 | x_t] = sum_k p(k | x_t) (mu_k + alpha Sigma_k (alpha^2 Sigma_k + sigma^2 I)^-1 (x_t - alpha mu_k)),
-        the Gaussian conditioning formula applied per component (e.g. Bishop 2006, Eq. 2.116)."""
+    def component_posterior_means(self, x_t, alpha, sigma) -> tuple[torch.Tensor, torch.Tensor]:
+        """(p(k | x_t) (B, K), E[x0 | x_t, k] (B, K, d)) with E[x0 | x_t, k] = mu_k + alpha Sigma_k
+        (alpha^2 Sigma_k + sigma^2 I)^-1 (x_t - alpha mu_k), the Gaussian conditioning formula per component
+        (e.g. Bishop 2006, Eq. 2.116). Component k given is the class-conditional denoiser of label k."""
         logw, _, _, sol = self._noisy_components(x_t, alpha, sigma)
         a = torch.as_tensor(alpha, dtype=torch.float64).reshape(-1, 1, 1)
         per_k = self.means + a * (self.covs @ sol.unsqueeze(-1)).squeeze(-1)  # (B, K, d)
-        return (torch.softmax(logw, dim=1).unsqueeze(-1) * per_k).sum(1)
+        return torch.softmax(logw, dim=1), per_k
+
+    def posterior_mean(self, x_t, alpha, sigma) -> torch.Tensor:
+        """E[x0 | x_t] = sum_k p(k | x_t) E[x0 | x_t, k] (see component_posterior_means)."""
+        resp, per_k = self.component_posterior_means(x_t, alpha, sigma)
+        return (resp.unsqueeze(-1) * per_k).sum(1)
 
     def entropy(self, n: int = 200_000, seed: int = 0) -> float:
         """H(p) = -E log p(x0), by Monte Carlo on n exact samples (no closed form for mixtures)."""

@@ -11,6 +11,8 @@ A method tells the pipeline, the verbs and validation everything they need, thro
   loss / train  the stage's loss for the shared training loop (train runs that loop; override to do otherwise)
   sampler       how a student samples at a step count
   save_meta / rebuild  the extra model.json keys of a saved student, and the student rebuilt from them
+  evaluate / judge / summary_plots  optional: a method that scores its students its own way (guided: per
+                guidance weight), its own stop rule on those metrics, and extra plots of the finished run
 
 `register(method)` adds a method to METHODS; `method_named(name)` looks one up (a clear error for unknown names).
 Every module of this package is imported when it loads, so a new method is one new file here (plus an optional
@@ -99,6 +101,20 @@ class Method:
         """The student as it sampled, around `denoiser` (the saved network as a NetDenoiser), before its weights
         are loaded."""
         return denoiser
+
+    def evaluate(self, cfg, bench, spec: StageSpec, student, teacher_denoiser, num_classes: int) -> dict | None:
+        """A stage's metrics when the method scores its students itself; None: the pipeline's evaluation
+        (quality against the data, divergence from the teacher, the teacher's DDIM baseline)."""
+        return None
+
+    def judge(self, cfg, metrics: dict):
+        """The stop rule's stopping.Verdict for a stage's metrics when the method judges itself; None: the
+        pipeline's rule on quality/<stop.metric> against the teacher at full steps."""
+        return None
+
+    def summary_plots(self, summary: dict, run_dir: Path) -> list[Path]:
+        """Extra plots of a finished run in the run folder (logged to the parent run when named there)."""
+        return []
 
 
 def stage_loop_spec(cfg, spec: StageSpec) -> LoopSpec:

@@ -36,14 +36,41 @@ def denoising_loss(model: NetDenoiser, target_model, batch, generator):
     return torch.mean((model(x_t, t, cond) - target) ** 2)
 
 
-def oracle_fit_loss(oracle):
+def drop_labels(cond, p: float, null_label: int, generator: torch.Generator):
+    """Each label replaced by the null label with probability p (label dropout, Ho & Salimans 2022, Alg. 1), so
+    one network learns the class-conditional and the unconditional denoiser. p = 0 draws nothing."""
+    if cond is None or p <= 0:
+        return cond
+    drop = torch.rand(cond.shape[0], generator=generator).to(cond.device) < p
+    return torch.where(drop, torch.full_like(cond, null_label), cond)
+
+
+def denoising_loss_with_dropout(p: float, null_label: int):
+    """denoising_loss with the labels dropped to `null_label` with probability p (drawn after the noise)."""
+    if p <= 0:
+        return denoising_loss
+
+    def loss(model: NetDenoiser, target_model, batch, generator):
+        x0, cond = batch
+        t, eps, alpha, sigma, x_t = draw_noisy(x0, model.schedule, generator)
+        cond = drop_labels(cond, p, null_label, generator)
+        x0, cond, t, eps, alpha, sigma, x_t = current_shard().local(x0, cond, t, eps, alpha, sigma, x_t)
+        target = target_for(model.parameterization, x0, eps, alpha, sigma)
+        return torch.mean((model(x_t, t, cond) - target) ** 2)
+    return loss
+
+
+def oracle_fit_loss(oracle, p: float = 0.0, null_label: int = 0):
     """Regress the network onto the exact denoiser (same output space as denoising_loss, exact target:
-    no data noise in the target, so a network copy of the oracle is learned with far fewer iterations)."""
+    no data noise in the target, so a network copy of the oracle is learned with far fewer iterations).
+    With a labelled oracle and label dropout p the network learns the conditional and unconditional ones."""
     def loss(model: NetDenoiser, target_model, batch, generator):
         x0, cond = batch
         t, _, alpha, sigma, x_t = draw_noisy(x0, model.schedule, generator)
+        cond = drop_labels(cond, p, null_label, generator)
         x0, cond, t, alpha, sigma, x_t = current_shard().local(x0, cond, t, alpha, sigma, x_t)
-        x0_star, eps_star = oracle.predict(x_t, t)
+        # A labelled oracle answers per label (the null label: unconditionally); otherwise it ignores cond.
+        x0_star, eps_star = oracle.predict(x_t, t, cond if getattr(oracle, "labelled", False) else None)
         target = target_for(model.parameterization, x0_star, eps_star, alpha, sigma)
         return torch.mean((model(x_t, t, cond) - target) ** 2)
     return loss

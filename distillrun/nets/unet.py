@@ -42,20 +42,23 @@ class ConvBlock(nn.Module):
 
 class SmallUNet(nn.Module):
     """Level i works at S / 2**i pixels with base * mults[i] channels; the middle block runs at
-    S / 2**len(mults). cond: (B,) labels in [0, num_classes], label num_classes = "no class"."""
+    S / 2**len(mults). cond: (B,) labels in [0, num_classes], label num_classes = "no class"; with
+    guidance=True a denoiser.GuidanceCond(labels, w) (see CondEmbedding)."""
 
     images = True  # takes (C, S, S) images
     size_keys = ("base", "mults")  # the net.* config keys that size it
 
     def __init__(self, channels: int = 1, image_size: int = 16, base: int = 32, mults=(1, 2),
-                 num_classes: int = 0, time_features: int = 32):
+                 num_classes: int = 0, time_features: int = 32, guidance: bool = False):
         super().__init__()
         mults = tuple(int(m) for m in mults)
         check_unet_args(channels, image_size, base, mults)
         self.arch = dict(channels=channels, image_size=image_size, base=base, mults=list(mults),
                          num_classes=num_classes, time_features=time_features)
+        if guidance:
+            self.arch["guidance"] = True
         emb_width = 4 * base  # embedding wider than the first level (Ho et al. 2020 use 4x)
-        self.embed = CondEmbedding(emb_width, time_features, num_classes)
+        self.embed = CondEmbedding(emb_width, time_features, num_classes, guidance)
         widths = [base * m for m in mults]
         self.conv_in = nn.Conv2d(channels, base, 3, padding=1)
         ins = [base] + widths[:-1]
@@ -68,7 +71,7 @@ class SmallUNet(nn.Module):
         self.norm_out = group_norm(widths[0])
         self.conv_out = nn.Conv2d(widths[0], channels, 3, padding=1)
 
-    def forward(self, x: torch.Tensor, t: torch.Tensor, cond: torch.Tensor | None = None) -> torch.Tensor:
+    def forward(self, x: torch.Tensor, t: torch.Tensor, cond=None) -> torch.Tensor:
         emb = self.embed(t, cond)  # (B, 4 base), or (1, 4 base) for a shared time (broadcast in FiLM)
         h, skips = self.conv_in(x), []
         for block, down in zip(self.down_blocks, self.downsamples):
