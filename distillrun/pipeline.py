@@ -69,9 +69,8 @@ def preflight(cfg: DictConfig):
         raise DataError(f"net.kind={cfg.net.kind} does not fit data of shape {data.shape}; "
                         f"use net={kind_for(data.is_image)}")
     if cfg.net.class_cond and data.labels is None:
-        why = "guided distillation (method=guided) needs labelled data" if cfg.method.name == "guided" else \
-            "give labelled data or net.class_cond=false"
-        raise DataError(f"net.class_cond=true but data.name={cfg.data.name} has no labels; {why}")
+        raise DataError(f"net.class_cond=true (method={cfg.method.name}) but data.name={cfg.data.name} has no labels; "
+                        "give labelled data, or net.class_cond=false where the method allows it")
     with torch.random.fork_rng(devices=[]):  # user code and network init must not shift the run's seed
         if cfg.teacher.source == "import":
             net = import_teacher(cfg.teacher.factory, cfg.teacher.factory_kwargs, cfg.teacher.weights, data.shape,
