@@ -57,6 +57,8 @@ def _with_required_files(overrides: list[str], files: Path):
         extra.append(f"data.path={files / 'points.npy'}")
     if cfg.data.name == "image_folder" and not cfg.data.path:
         extra.append(f"data.path={files / 'images'}")
+    if cfg.method.name == "guided" and cfg.stop.metric == "panel":  # the panel scores against data, guided against
+        extra.append("stop.metric=sw2")                               # the guided teacher: the method refuses it
     if cfg.teacher.source == "import":
         if not cfg.teacher.factory:
             extra.append("teacher.factory=my_models:build_teacher")

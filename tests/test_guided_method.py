@@ -283,8 +283,7 @@ def test_guided_recipe_runs_scores_every_w_and_draws(tmp_path, capsys):
     (["net.class_cond=false"], "net.class_cond=False: method=guided distils a class-conditional teacher"),
     (["stop=absolute", "stop.metric=nll_gap"], "stop.metric='nll_gap': method=guided scores students against"),
     (["method.judge_w=3"], "method.judge_w=3.0: must be null (the worst w) or one of method.w_grid"),
-    (["data=spiral", "teacher=train"], "data.name=spiral has no labels; guided distillation (method=guided) needs "
-                                        "labelled data"),
+    (["data=spiral", "teacher=train"], "(method=guided) but data.name=spiral has no labels"),
 ])
 def test_bad_guided_input_is_refused_in_one_line(tmp_path, overrides, says):
     import io
