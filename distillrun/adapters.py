@@ -28,7 +28,6 @@ from __future__ import annotations
 
 import copy
 import fnmatch
-import hashlib
 import json
 import math
 from dataclasses import dataclass, field
@@ -38,6 +37,8 @@ from typing import Iterable, Mapping
 import torch
 from torch import nn
 from torch.nn.utils import parametrize
+
+from .checkpoint import tensor_digest
 
 ADAPTER_FORMAT = "distillrun-adapter/1"
 HEADER_KEY = "distillrun.adapter"  # safetensors header entry holding the JSON description
@@ -293,17 +294,6 @@ def base_state(net: nn.Module) -> dict[str, torch.Tensor]:
             continue
         out[key] = value
     return out
-
-
-def tensor_digest(tensors: Mapping[str, torch.Tensor]) -> str:
-    """sha256 over name, dtype, shape and raw bytes of every tensor, in name order (memory layout and device
-    do not enter it)."""
-    h = hashlib.sha256()
-    for name in sorted(tensors):
-        t = tensors[name].detach().cpu().contiguous()
-        h.update(f"{name}|{t.dtype}|{tuple(t.shape)}|".encode())
-        h.update(t.reshape(-1).view(torch.uint8).numpy().tobytes())
-    return h.hexdigest()
 
 
 def base_digest(net: nn.Module, exclude: Iterable[str] = ()) -> str:

@@ -250,8 +250,9 @@ def model_complete(folder) -> bool:
 
 # ---------------------------------------------------------------- training state
 
-def _digest(tensors: Mapping[str, torch.Tensor]) -> str:
-    """sha256 over name, dtype, shape and raw bytes of every tensor, in name order."""
+def tensor_digest(tensors: Mapping[str, torch.Tensor]) -> str:
+    """sha256 over name, dtype, shape and raw bytes of every tensor, in name order (memory layout and device
+    do not enter it)."""
     h = hashlib.sha256()
     for name in sorted(tensors):
         t = tensors[name].detach().cpu().contiguous()
@@ -267,7 +268,7 @@ def save_state(path, tensors: Mapping[str, torch.Tensor], meta: Mapping) -> None
     except (TypeError, ValueError) as exc:
         raise TypeError(f"training state meta for {path} is not JSON-able: {exc}") from None
     prepared = _prepare(tensors)
-    header = dict(zip(_STATE_KEYS, (STATE_FORMAT, meta_text, _digest(prepared))))
+    header = dict(zip(_STATE_KEYS, (STATE_FORMAT, meta_text, tensor_digest(prepared))))
     atomic_save_tensors(path, prepared, header)
 
 
@@ -279,7 +280,7 @@ def load_state(path, hint: str | None = None) -> tuple[dict[str, torch.Tensor], 
     if header.get(_STATE_KEYS[0]) != STATE_FORMAT:
         raise _fail(path, f"not a training state file (no {STATE_FORMAT} marker)", hint)
     tensors = _parse_tensors(data, path, hint)
-    if _digest(tensors) != header.get(_STATE_KEYS[2]):
+    if tensor_digest(tensors) != header.get(_STATE_KEYS[2]):
         raise _fail(path, "corrupted (content digest mismatch)", hint)
     try:
         meta = json.loads(header.get(_STATE_KEYS[1], ""))
